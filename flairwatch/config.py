@@ -1,0 +1,193 @@
+"""Settings: loaded once from YAML into a frozen dataclass, validated, overridden by flags.
+
+Every key is documented in ``config.example.yaml``. Errors name the key and say what to do.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping
+from dataclasses import dataclass, field, fields, replace
+from pathlib import Path
+from typing import Any
+
+import yaml
+
+from flairwatch.errors import ConfigInvalid
+from flairwatch.select import SelectRules, rules_from_mapping
+
+IDENTIFIER_FIELDS = ("patient_id", "patient_name", "dates")
+IDENTIFIER_ACTIONS = ("keep", "pseudonymise", "drop")
+
+DEFAULT_SETTLE_SECONDS = 30.0
+DEFAULT_RESCAN_SECONDS = 300.0
+DEFAULT_MIN_LESION_MM3 = 10.0
+DEFAULT_CONNECTIVITY = 26
+
+
+def default_model_manifest() -> Path:
+    """The manifest of the model shipped in ``models/`` (next to the package when installed from a checkout)."""
+    return Path(__file__).resolve().parent.parent / "models" / "wmh-synth" / "model.yaml"
+
+
+def cpus_available() -> int:
+    """CPUs this process may use: affinity mask, further limited by a cgroup v2 CPU quota."""
+    n = len(os.sched_getaffinity(0))
+    try:
+        quota, period = Path("/sys/fs/cgroup/cpu.max").read_text().split()[:2]
+        if quota != "max":
+            n = min(n, max(1, int(float(quota) / float(period))))
+    except (OSError, ValueError):
+        pass
+    return max(1, n)
+
+
+@dataclass(frozen=True)
+class Identifiers:
+    """What summaries and exports do with each identifier: keep, pseudonymise or drop."""
+
+    patient_id: str = "pseudonymise"
+    patient_name: str = "drop"
+    dates: str = "keep"
+
+
+@dataclass(frozen=True)
+class Config:
+    inbox: Path | None = None
+    results: Path | None = None
+    state: Path | None = None
+    quarantine: Path | None = None
+    settle_seconds: float = DEFAULT_SETTLE_SECONDS
+    rescan_seconds: float = DEFAULT_RESCAN_SECONDS
+    polling: bool = False
+    workers: int = 1
+    threads: int = 0  # 0 = the CPUs this process may use, divided among workers
+    model: Path = field(default_factory=default_model_manifest)
+    threshold: float | None = None  # None = the manifest's
+    min_lesion_mm3: float = DEFAULT_MIN_LESION_MM3
+    connectivity: int = DEFAULT_CONNECTIVITY
+    select: SelectRules = field(default_factory=lambda: rules_from_mapping(None))
+    identifiers: Identifiers = field(default_factory=Identifiers)
+    delete_inbox_files: bool = False
+    keep_versions: int = 0  # 0 = keep every model version's results
+
+    def threads_per_worker(self) -> int:
+        if self.threads > 0:
+            return self.threads
+        return max(1, cpus_available() // max(1, self.workers))
+
+
+_PATH_KEYS = ("inbox", "results", "state", "quarantine", "model")
+
+
+def _number(key: str, value: Any, *, lo: float, hi: float | None = None) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise ConfigInvalid(f"config key '{key}' must be a number, got {value!r}")
+    if value < lo or (hi is not None and value > hi):
+        rng = f">= {lo}" if hi is None else f"between {lo} and {hi}"
+        raise ConfigInvalid(f"config key '{key}' must be {rng}, got {value!r}")
+    return float(value)
+
+
+def _flag(key: str, value: Any) -> bool:
+    if not isinstance(value, bool):
+        raise ConfigInvalid(f"config key '{key}' must be true or false, got {value!r}")
+    return value
+
+
+def _identifiers(raw: Any) -> Identifiers:
+    if raw is None:
+        return Identifiers()
+    if not isinstance(raw, Mapping):
+        raise ConfigInvalid("config key 'identifiers' must be a mapping like {patient_id: drop}")
+    unknown = set(raw) - set(IDENTIFIER_FIELDS)
+    if unknown:
+        raise ConfigInvalid(
+            f"config key 'identifiers' has unknown entries {sorted(unknown)}; "
+            f"use {', '.join(IDENTIFIER_FIELDS)}"
+        )
+    for k, v in raw.items():
+        if v not in IDENTIFIER_ACTIONS:
+            raise ConfigInvalid(
+                f"config key 'identifiers.{k}' must be one of {', '.join(IDENTIFIER_ACTIONS)}, got {v!r}"
+            )
+    return Identifiers(**dict(raw))
+
+
+def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None) -> Config:
+    """Validate a parsed YAML mapping; relative paths are taken relative to ``base_dir``."""
+    known = {f.name for f in fields(Config)}
+    unknown = set(raw) - known
+    if unknown:
+        raise ConfigInvalid(
+            f"unknown config key(s) {', '.join(sorted(unknown))}; see config.example.yaml"
+        )
+    values: dict[str, Any] = {}
+    for key in _PATH_KEYS:
+        v = raw.get(key)
+        if v in (None, ""):
+            continue
+        if not isinstance(v, str):
+            raise ConfigInvalid(f"config key '{key}' must be a path, got {v!r}")
+        p = Path(v).expanduser()
+        if base_dir is not None and not p.is_absolute():
+            p = base_dir / p
+        values[key] = p
+    if "settle_seconds" in raw:
+        values["settle_seconds"] = _number("settle_seconds", raw["settle_seconds"], lo=0)
+    if "rescan_seconds" in raw:
+        values["rescan_seconds"] = _number("rescan_seconds", raw["rescan_seconds"], lo=1)
+    for key in ("polling", "delete_inbox_files"):
+        if key in raw:
+            values[key] = _flag(key, raw[key])
+    for key, lo in (("workers", 1), ("threads", 0), ("keep_versions", 0)):
+        if key in raw:
+            v = raw[key]
+            if isinstance(v, bool) or not isinstance(v, int) or v < lo:
+                raise ConfigInvalid(f"config key '{key}' must be a whole number >= {lo}, got {v!r}")
+            values[key] = v
+    if raw.get("threshold") not in (None, ""):
+        values["threshold"] = _number("threshold", raw["threshold"], lo=0.0, hi=1.0)
+    if "min_lesion_mm3" in raw:
+        values["min_lesion_mm3"] = _number("min_lesion_mm3", raw["min_lesion_mm3"], lo=0)
+    if "connectivity" in raw:
+        if raw["connectivity"] not in (6, 18, 26):
+            raise ConfigInvalid(
+                f"config key 'connectivity' must be 6, 18 or 26, got {raw['connectivity']!r}"
+            )
+        values["connectivity"] = int(raw["connectivity"])
+    if "select" in raw:
+        values["select"] = rules_from_mapping(raw["select"])
+    if "identifiers" in raw:
+        values["identifiers"] = _identifiers(raw["identifiers"])
+    return Config(**values)
+
+
+def load_config(path: Path | None) -> Config:
+    """Read a YAML config file (None = all defaults)."""
+    if path is None:
+        return Config()
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except OSError as exc:
+        raise ConfigInvalid(f"cannot read config file {path}: {exc.strerror}") from None
+    try:
+        raw = yaml.safe_load(text)
+    except yaml.YAMLError as exc:
+        raise ConfigInvalid(f"config file {path} is not valid YAML: {exc}") from None
+    if raw is None:
+        raw = {}
+    if not isinstance(raw, Mapping):
+        raise ConfigInvalid(f"config file {path} must hold a mapping of keys to values")
+    return config_from_mapping(raw, base_dir=Path(path).resolve().parent)
+
+
+def with_overrides(cfg: Config, **flags: Any) -> Config:
+    """Command-line flags beat the file: every flag that is not None replaces its key."""
+    given = {k: v for k, v in flags.items() if v is not None}
+    if not given:
+        return cfg
+    merged = config_from_mapping(
+        {k: (str(v) if isinstance(v, Path) else v) for k, v in given.items()}
+    )
+    return replace(cfg, **{k: getattr(merged, k) for k in given})
