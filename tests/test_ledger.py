@@ -1,0 +1,187 @@
+"""Ledger tests: real SQLite files, real processes."""
+
+from __future__ import annotations
+
+import multiprocessing
+import os
+import sqlite3
+import threading
+import time
+from pathlib import Path
+
+import pytest
+
+from flairwatch.errors import ConfigInvalid
+from flairwatch.ledger import (
+    LEDGER_FILE,
+    FileRow,
+    JobState,
+    Ledger,
+    check_local_disk,
+    mount_fstype,
+)
+
+# The example line of proc(5), "/proc/pid/mountinfo", plus an NFS and a CIFS mount in the same
+# format (field 5 mount point, "-" separator, then the file-system type).
+MOUNTINFO = """\
+22 1 8:1 / / rw,relatime shared:1 - ext4 /dev/sda1 rw
+36 35 98:0 /mnt1 /mnt2 rw,noatime master:1 - ext3 /dev/root rw,errors=continue
+40 22 0:50 / /srv/share rw,relatime shared:30 - nfs4 fileserver:/export rw,vers=4.2
+41 22 0:51 / /mnt/lab\\040data rw,relatime - cifs //nas/lab rw
+"""
+
+
+def test_mount_type_from_mountinfo() -> None:
+    # proc(5): the longest mount point containing the path decides; octal escapes for blanks
+    assert mount_fstype(Path("/mnt2/x"), MOUNTINFO) == "ext3"
+    assert mount_fstype(Path("/mnt22"), MOUNTINFO) == "ext4"
+    assert mount_fstype(Path("/srv/share/state"), MOUNTINFO) == "nfs4"
+    assert mount_fstype(Path("/mnt/lab data/state"), MOUNTINFO) == "cifs"
+
+
+def test_network_state_folder_is_refused() -> None:
+    # sqlite.org/wal.html: WAL does not work over a network file system
+    with pytest.raises(ConfigInvalid, match="network file system"):
+        check_local_disk(Path("/srv/share/state"), MOUNTINFO)
+    with pytest.raises(ConfigInvalid, match="cifs"):
+        check_local_disk(Path("/mnt/lab data/flairwatch"), MOUNTINFO)
+    check_local_disk(Path("/var/lib/flairwatch"), MOUNTINFO)  # ext4: accepted
+
+
+def test_open_sets_wal_and_full_sync(tmp_path: Path) -> None:
+    with Ledger.open(tmp_path / "state") as led:
+        # PRAGMA docs: synchronous FULL is 2
+        assert led.query("PRAGMA journal_mode")[0][0] == "wal"
+        assert led.query("PRAGMA synchronous")[0][0] == 2
+        assert led.query("PRAGMA user_version")[0][0] == 1
+    with Ledger.open(tmp_path / "state") as led:  # reopening keeps the schema
+        assert led.state_counts() == {}
+
+
+def _add_series(led: Ledger, uid: str, n: int, now: float) -> int:
+    files = [
+        FileRow(f"/in/{uid}/{i}.dcm", 1000 + i, 10**9, f"{uid}.{i}", "1.2.3", uid) for i in range(n)
+    ]
+    led.record_scan(files, [], now)
+    srow, job = led.new_revision("1.2.3", uid, ("s1", "t1", "e1"), now)
+    assert led.take_files(srow.id, "1.2.3", uid) == n
+    assert led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, now)
+    return job.id
+
+
+def test_revision_keeps_old_files_and_takes_late_ones(tmp_path: Path) -> None:
+    with Ledger.open(tmp_path) as led:
+        job1 = _add_series(led, "9.1", 3, 100.0)
+        assert led.known_sops("1.2.3", "9.1") == {"9.1.0", "9.1.1", "9.1.2"}
+        late = FileRow("/in/9.1/late.dcm", 5, 10**9, "9.1.9", "1.2.3", "9.1")
+        led.record_scan([late], [], 200.0)
+        # the late instance is present but not yet in any revision
+        assert "9.1.9" not in led.known_sops("1.2.3", "9.1")
+        s2, job2 = led.new_revision("1.2.3", "9.1", ("s1", "t1", "e1-r2"), 201.0)
+        assert s2.revision == 2 and job2.state is JobState.SETTLING
+        assert led.take_files(s2.id, "1.2.3", "9.1") == 1
+        assert len(led.revision_files(s2.id)) == 4
+        assert len(led.revision_files(led.job(job1).series_id)) == 3
+        # a file replaced by another instance at the same path leaves its revision
+        led.record_scan([FileRow("/in/9.1/0.dcm", 7, 1, "9.1.x", "1.2.3", "9.1")], [], 300.0)
+        assert len(led.revision_files(s2.id)) == 3
+        led.record_scan([], ["/in/9.1/1.dcm"], 301.0)
+        assert "/in/9.1/1.dcm" not in led.known_files()
+
+
+def test_claim_order_state_guard_and_current_result(tmp_path: Path) -> None:
+    with Ledger.open(tmp_path) as led:
+        low = _add_series(led, "9.1", 2, 1.0)
+        high = _add_series(led, "9.2", 2, 2.0)
+        led.move_job(high, [JobState.QUEUED], JobState.QUEUED, 2.0, priority=5)
+        led.move_job(low, [JobState.QUEUED], JobState.QUEUED, 2.0, not_before=50.0)
+        first = led.claim_next(10.0, "m", "1.0.0", 123)
+        assert first is not None and first.id == high and first.state is JobState.RUNNING
+        assert led.claim_next(10.0, "m", "1.0.0", 123) is None  # low waits for its retry time
+        assert not led.move_job(high, [JobState.QUEUED], JobState.DONE, 11.0)
+        summary = {"model": {"name": "m", "version": "1.0.0"}, "lesion_volume_ml": 1.5}
+        led.finish_done(high, "/r/a", summary, adopted=False, seconds=3.0, now=12.0)
+        # a later revision's result becomes the current one
+        _, job2 = led.new_revision("1.2.3", "9.2", ("s", "t", "e-r2"), 13.0)
+        led.move_job(job2.id, [JobState.SETTLING], JobState.QUEUED, 13.0)
+        assert led.claim_next(14.0, "m", "1.0.0", 1) is not None
+        led.finish_done(job2.id, "/r/b", summary, adopted=True, seconds=1.0, now=15.0)
+        rows = led.query("SELECT result_path, current FROM results ORDER BY id")
+        assert rows == [("/r/a", 0), ("/r/b", 1)]
+        assert led.state_counts() == {"done": 2, "queued": 1}
+        assert led.done_since(0.0) == (2, 2.0)
+
+
+def test_requeue_running_after_crash(tmp_path: Path) -> None:
+    with Ledger.open(tmp_path) as led:
+        job = _add_series(led, "9.1", 1, 1.0)
+        led.claim_next(2.0, "m", "1", 99)
+    with Ledger.open(tmp_path) as led:  # a new daemon after kill -9
+        assert led.requeue_running(3.0) == [job]
+        again = led.claim_next(3.0, "m", "1", 100)
+        assert again is not None and again.attempts == 2
+
+
+def _claimer(state: str, out: multiprocessing.Queue[list[int]]) -> None:
+    got = []
+    with Ledger.open(Path(state)) as led:
+        while (job := led.claim_next(time.time(), "m", "1", os.getpid())) is not None:
+            got.append(job.id)
+    out.put(got)
+
+
+def test_concurrent_claims_never_take_a_job_twice(tmp_path: Path) -> None:
+    # real processes with their own connections race on BEGIN IMMEDIATE
+    with Ledger.open(tmp_path) as led:
+        ids = [_add_series(led, f"9.{i}", 1, float(i)) for i in range(40)]
+    ctx = multiprocessing.get_context("spawn")
+    out: multiprocessing.Queue[list[int]] = ctx.Queue()
+    procs = [ctx.Process(target=_claimer, args=(str(tmp_path), out)) for _ in range(3)]
+    for p in procs:
+        p.start()
+    taken = [job for _ in procs for job in out.get(timeout=60)]
+    for p in procs:
+        p.join(10)
+    assert sorted(taken) == ids
+
+
+def test_waits_for_another_writer(tmp_path: Path) -> None:
+    with Ledger.open(tmp_path) as led:
+        other = sqlite3.connect(
+            tmp_path / LEDGER_FILE, isolation_level=None, check_same_thread=False
+        )
+        other.execute("BEGIN IMMEDIATE")
+        threading.Timer(0.4, other.execute, args=("COMMIT",)).start()
+        t0 = time.monotonic()
+        _add_series(led, "9.1", 1, 1.0)
+        assert time.monotonic() - t0 >= 0.3
+        other.close()
+
+
+def test_connection_does_not_cross_fork(tmp_path: Path) -> None:
+    with Ledger.open(tmp_path) as led:
+        pid = os.fork()
+        if pid == 0:  # child: using the parent's connection must fail loudly
+            try:
+                led.state_counts()
+            except RuntimeError:
+                os._exit(7)
+            os._exit(0)
+        _, status = os.waitpid(pid, 0)
+        assert os.waitstatus_to_exitcode(status) == 7
+        assert led.state_counts() == {}
+
+
+def test_backup_is_a_consistent_copy(tmp_path: Path) -> None:
+    with Ledger.open(tmp_path / "state") as led:
+        for i in range(5):
+            _add_series(led, f"9.{i}", 3, float(i))
+        led.beat(1, "running", 5.0, inbox="/in")
+        target = tmp_path / "copy.sqlite3"
+        led.backup_to(target)
+    copy = sqlite3.connect(target)
+    assert copy.execute("PRAGMA integrity_check").fetchone()[0] == "ok"
+    assert copy.execute("SELECT COUNT(*) FROM files").fetchone()[0] == 15
+    assert copy.execute("SELECT COUNT(*) FROM jobs WHERE state='queued'").fetchone()[0] == 5
+    copy.close()
+    assert not list(tmp_path.glob(".copy*"))
