@@ -131,7 +131,9 @@ def manifest_from_mapping(raw: Mapping[str, Any], *, where: Path) -> ModelManife
             path=where,
         )
     except (KeyError, TypeError, ValueError, IndexError) as exc:
-        raise ModelInvalid(f"model manifest {where} is malformed ({exc!r}); see models/README.md") from None
+        raise ModelInvalid(
+            f"model manifest {where} is malformed ({exc!r}); see models/README.md"
+        ) from None
     if manifest.input_layout != "NCHW":
         raise ModelInvalid(f"model manifest {where}: only input layout NCHW is supported")
     if channels < 1 or channels % 2 == 0:

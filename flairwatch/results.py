@@ -116,7 +116,7 @@ def current_version(series_dir: Path) -> str | None:
 
 def remove_incomplete(results_root: Path) -> list[Path]:
     """Delete temporary folders left by a crash (they never hold a complete result)."""
-    removed = []
+    removed: list[Path] = []
     if not results_root.is_dir():
         return removed
     # subject / study / series / .building-*: exactly four levels down
