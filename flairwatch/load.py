@@ -304,7 +304,7 @@ def _check_pixel_data(ds: Dataset, label: str) -> None:
 
 
 def _pixels(ds: Dataset, label: str) -> npt.NDArray[np.generic]:
-    _check_pixel_data(ds, label)
+    """Decoded pixel array; :func:`_check_pixel_data` must have passed."""
     try:
         arr = ds.pixel_array
     except Exception as exc:  # decoders raise assorted types; all mean the same to the user
@@ -342,6 +342,8 @@ def volume_from_datasets(datasets: Sequence[Dataset], label: str) -> Volume:
         why = not_image_reason(ds)
         if why is not None:
             raise _reject(label, why, "only image series can be processed")
+        # Cheap checks of every file first: a series still arriving shows up here.
+        _check_pixel_data(ds, label)
         frames.extend(_frames_of(ds, index, label))
     shapes = sorted({f.shape for f in frames})
     if len(shapes) > 1:
