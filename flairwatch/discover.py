@@ -42,15 +42,10 @@ NIFTI_SUFFIXES: tuple[str, ...] = (".nii", ".nii.gz")
 
 ListDir = Callable[[Path], Iterable[str]]
 Stat = Callable[[Path], os.stat_result]
-RealPath = Callable[[Path], Path]
 
 # A file without the Part 10 preamble may still be DICOM if it opens with a group 0002 or 0008
 # element (little or big endian); anything else is not worth a forced parse.
 _RAW_DICOM_STARTS = (b"\x02\x00", b"\x08\x00", b"\x00\x02", b"\x00\x08")
-
-
-def _realpath(path: Path) -> Path:
-    return Path(os.path.realpath(path))
 
 
 def is_ignored_name(name: str) -> bool:
@@ -64,24 +59,21 @@ def is_nifti_path(path: Path) -> bool:
     return path.name.lower().endswith(NIFTI_SUFFIXES)
 
 
-def _inside(path: Path, root: Path) -> bool:
-    return path == root or root in path.parents
-
-
 def iter_candidate_files(
     roots: Sequence[Path],
     *,
     listdir: ListDir = os.listdir,
     lstat: Stat = os.lstat,
-    realpath: RealPath = _realpath,
 ) -> Iterator[Path]:
     """Yield the files under ``roots`` that may hold DICOM or NIfTI data, in a fixed order.
 
-    A root that is a file is yielded as given (whatever its name). Folders are searched
-    recursively in sorted name order; dotfiles, dot-folders and names ending in
-    :data:`IGNORED_SUFFIXES` are skipped. A symbolic link is followed only when its target lies
-    inside the root it was found under (a linked folder is entered once, so loops end). Entries
-    that vanish or cannot be read during the walk are skipped with a log line.
+    A root that is a file is yielded as given (whatever its name); a root may be a symbolic
+    link. Folders are searched recursively, depth first, in sorted name order; dotfiles,
+    dot-folders and names ending in :data:`IGNORED_SUFFIXES` are skipped. Symbolic links below
+    a root are never followed: one pointing outside would read files the inbox does not own,
+    and one pointing inside leads to files the walk reaches anyway (twice would make
+    duplicates) or to a loop. Entries that vanish or cannot be read during the walk are
+    skipped with a log line.
 
     Raises
     ------
@@ -91,28 +83,17 @@ def iter_candidate_files(
     for root in roots:
         try:
             st = lstat(root)
+            if stat_mod.S_ISLNK(st.st_mode):
+                st = os.stat(root)
         except OSError:
             raise InputRejected(f"{root}: no such file or folder; check the path") from None
-        if stat_mod.S_ISLNK(st.st_mode):
-            try:
-                st = os.stat(root)
-            except OSError:
-                raise InputRejected(f"{root}: broken symbolic link; check the path") from None
-        if not stat_mod.S_ISDIR(st.st_mode):
+        if stat_mod.S_ISDIR(st.st_mode):
+            yield from _walk(root, listdir, lstat)
+        else:
             yield root
-            continue
-        real_root = realpath(root)
-        yield from _walk(root, real_root, {real_root}, listdir, lstat, realpath)
 
 
-def _walk(
-    folder: Path,
-    real_root: Path,
-    visited: set[Path],
-    listdir: ListDir,
-    lstat: Stat,
-    realpath: RealPath,
-) -> Iterator[Path]:
+def _walk(folder: Path, listdir: ListDir, lstat: Stat) -> Iterator[Path]:
     try:
         names = sorted(listdir(folder))
     except OSError as exc:
@@ -128,23 +109,9 @@ def _walk(
             logger.debug("skipping %s: %s", path, exc)
             continue
         if stat_mod.S_ISLNK(mode):
-            target = realpath(path)
-            if not _inside(target, real_root):
-                logger.warning("not following %s: it points outside %s", path, real_root)
-                continue
-            try:
-                mode = lstat(target).st_mode
-            except OSError:
-                logger.debug("skipping broken link %s", path)
-                continue
-            if stat_mod.S_ISDIR(mode):
-                if target in visited:
-                    continue
-                visited.add(target)
+            logger.info("not following symbolic link %s", path)
         elif stat_mod.S_ISDIR(mode):
-            visited.add(realpath(path))
-        if stat_mod.S_ISDIR(mode):
-            yield from _walk(path, real_root, visited, listdir, lstat, realpath)
+            yield from _walk(path, listdir, lstat)
         elif stat_mod.S_ISREG(mode):
             yield path
 
