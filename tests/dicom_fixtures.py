@@ -57,8 +57,8 @@ def series_in(*roots: Path) -> list[Series]:
 
 
 def slice_dataset(
-    position: Sequence[float],
-    orientation: Sequence[float] = (1, 0, 0, 0, 1, 0),
+    position: Sequence[float] | np.ndarray,
+    orientation: Sequence[float] | np.ndarray = (1, 0, 0, 0, 1, 0),
     pixel_spacing: tuple[float, float] = (1.0, 1.0),
     pixels: np.ndarray | None = None,
     *,
