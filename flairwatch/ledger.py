@@ -21,7 +21,7 @@ import logging
 import os
 import sqlite3
 import time
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass
 from enum import StrEnum
 from pathlib import Path
@@ -107,7 +107,8 @@ CREATE TABLE jobs (
     seconds REAL,
     error TEXT,
     result_path TEXT,
-    worker_pid INTEGER
+    worker_pid INTEGER,
+    worker_rss_kb INTEGER
 );
 CREATE INDEX jobs_state ON jobs (state, priority, id);
 CREATE INDEX jobs_series ON jobs (series_id);
@@ -209,6 +210,8 @@ class SeriesRow:
     stable_since: float | None
     n_files: int
     selection: str
+    study_key: str | None = None
+    series_key: str | None = None
 
 
 @dataclass(frozen=True)
@@ -230,7 +233,7 @@ _JOB_SELECT = """SELECT j.id, j.series_id, j.state, j.attempts, j.priority, s.st
     s.series_uid, s.revision, j.not_before, j.error, j.result_path
     FROM jobs j JOIN series s ON s.id = j.series_id"""
 _SERIES_SELECT = """SELECT id, study_uid, series_uid, revision, signature, stable_since, n_files,
-    selection FROM series"""
+    selection, study_key, series_key FROM series"""
 
 
 def _job(row: sqlite3.Row | tuple[Any, ...]) -> JobRow:
@@ -392,9 +395,16 @@ class Ledger:
         return SeriesRow(*self.query(_SERIES_SELECT + " WHERE id = ?", (series_id,))[0])
 
     def new_revision(
-        self, study_uid: str, series_uid: str, keys: tuple[str, str, str], now: float
+        self,
+        study_uid: str,
+        series_uid: str,
+        keys: Callable[[int], tuple[str, str, str]],
+        now: float,
     ) -> tuple[SeriesRow, JobRow]:
-        """Add the next revision of a series with a settling job (priority 0)."""
+        """Add the next revision of a series with a settling job (priority 0).
+
+        ``keys(revision)`` gives the (subject, study, series) keys of the new revision.
+        """
         with self.transaction() as db:
             (last,) = db.execute(
                 "SELECT COALESCE(MAX(revision), 0) FROM series WHERE study_uid=? AND series_uid=?",
@@ -403,7 +413,7 @@ class Ledger:
             cur = db.execute(
                 """INSERT INTO series (study_uid, series_uid, revision, subject_key, study_key,
                    series_key, first_seen, last_seen) VALUES (?,?,?,?,?,?,?,?)""",
-                (study_uid, series_uid, last + 1, *keys, now, now),
+                (study_uid, series_uid, last + 1, *keys(last + 1), now, now),
             )
             series_id = int(cur.lastrowid or 0)
             cur = db.execute(
@@ -467,12 +477,17 @@ class Ledger:
     def claim_next(
         self, now: float, model_name: str, model_version: str, pid: int
     ) -> JobRow | None:
-        """Take the most urgent queued job whose retry time has come; it becomes running."""
+        """Take the most urgent queued job for this model whose retry time has come.
+
+        Jobs queued for another model version (a re-run after an upgrade) are left to a daemon
+        running that model. The job becomes running and its attempt is counted.
+        """
         with self.transaction() as db:
             row = db.execute(
                 """SELECT id FROM jobs WHERE state = ? AND not_before <= ?
+                   AND (model_name IS NULL OR (model_name = ? AND model_version = ?))
                    ORDER BY priority DESC, id LIMIT 1""",
-                (JobState.QUEUED.value, now),
+                (JobState.QUEUED.value, now, model_name, model_version),
             ).fetchone()
             if row is None:
                 return None
@@ -493,6 +508,7 @@ class Ledger:
         adopted: bool,
         seconds: float,
         now: float,
+        rss_kb: int | None = None,
     ) -> None:
         """Record a durable result folder: the job is done and its result becomes current."""
         model = summary.get("model") or {}
@@ -504,8 +520,8 @@ class Ledger:
             version = model.get("version", version)
             db.execute(
                 """UPDATE jobs SET state=?, finished=?, seconds=?, result_path=?, error=NULL,
-                   model_name=?, model_version=? WHERE id=?""",
-                (JobState.DONE.value, now, seconds, result_path, name, version, job_id),
+                   model_name=?, model_version=?, worker_rss_kb=? WHERE id=?""",
+                (JobState.DONE.value, now, seconds, result_path, name, version, rss_kb, job_id),
             )
             db.execute(
                 """UPDATE results SET current = 0 WHERE series_id IN (SELECT b.id FROM series a
