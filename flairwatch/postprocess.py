@@ -23,6 +23,20 @@ logger = logging.getLogger(__name__)
 # faces only (6), faces + edges (18), faces + edges + corners (26).
 _RANK_FOR_CONNECTIVITY = {6: 1, 18: 2, 26: 3}
 
+# Columns of the per-lesion CSV, in order (units in the names; LPS = patient Left, Posterior,
+# Superior). Also the header of an empty table.
+LESION_COLUMNS: tuple[str, ...] = (
+    "lesion",
+    "voxels",
+    "volume_mm3",
+    "volume_ml",
+    "centroid_x_lps_mm",
+    "centroid_y_lps_mm",
+    "centroid_z_lps_mm",
+    "max_probability",
+    "mean_probability",
+)
+
 # Relative slack when comparing a component's volume with the minimum size: a lesion of exactly
 # the minimum volume must not be dropped because voxel-count x voxel-volume rounds a hair low.
 _SIZE_RTOL = 1e-9
@@ -284,7 +298,7 @@ def _describe(
 def lesion_rows(result: LesionResult) -> list[dict[str, object]]:
     """Rows for the per-lesion CSV, one dict per lesion, largest first.
 
-    Columns (units in the names): ``lesion``, ``voxels``, ``volume_mm3``, ``volume_ml``,
+    Keys are :data:`LESION_COLUMNS` in order (units in the names): ``lesion``, ``voxels``, ``volume_mm3``, ``volume_ml``,
     ``centroid_x_lps_mm``, ``centroid_y_lps_mm``, ``centroid_z_lps_mm`` (patient LPS: x to the
     Left, y to Posterior, z to Superior), ``max_probability``, ``mean_probability``. Volumes are
     rounded to 0.001 mm^3 / 0.000001 mL, coordinates to 0.01 mm, probabilities to 0.0001.

@@ -16,6 +16,7 @@ from scipy import ndimage
 
 from flairwatch.errors import ConfigInvalid, StageFailed
 from flairwatch.postprocess import (
+    LESION_COLUMNS,
     connected_components,
     lesion_rows,
     threshold_and_clean,
@@ -306,4 +307,5 @@ def test_lesion_rows_columns_and_values() -> None:
             "mean_probability": 0.75,
         }
     ]
+    assert tuple(rows[0]) == LESION_COLUMNS
     assert lesion_rows(threshold_and_clean(prob, affine, threshold=0.5, min_lesion_mm3=100.0)) == []
