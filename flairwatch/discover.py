@@ -274,12 +274,13 @@ def header_from_dataset(ds: Dataset) -> SeriesHeader:
 def not_image_reason(ds: Dataset) -> str | None:
     """Why a dataset is not an image to segment, or None when it is one."""
     sop_class = _text(ds, "SOPClassUID")
-    if sop_class:
-        name = UID(sop_class).name
-        # pydicom names unknown (private) classes by the UID itself: judge those by Rows/Columns.
-        if name != sop_class and "Image Storage" not in name:
-            return f"not an image ({name})"
+    name = UID(sop_class).name if sop_class else ""
+    # pydicom names unknown (private) classes by the UID itself: judge those by Rows/Columns.
+    if sop_class and name != sop_class and "Image Storage" not in name:
+        return f"not an image ({name})"
     if _int(ds, "Rows") is None or _int(ds, "Columns") is None:
+        if "Image Storage" in name:
+            return f"{name} without Rows/Columns (file cut short or damaged)"
         return "not an image (no Rows/Columns)"
     return None
 

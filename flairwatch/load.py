@@ -341,7 +341,8 @@ def volume_from_datasets(datasets: Sequence[Dataset], label: str) -> Volume:
     for index, ds in enumerate(datasets):
         why = not_image_reason(ds)
         if why is not None:
-            raise _reject(label, why, "only image series can be processed")
+            todo = "only image series can be processed"
+            raise _reject(label, why, todo if why.startswith("not an") else "resend the series")
         # Cheap checks of every file first: a series still arriving shows up here.
         _check_pixel_data(ds, label)
         frames.extend(_frames_of(ds, index, label))
