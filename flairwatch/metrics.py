@@ -147,12 +147,12 @@ def prepare(
             "grid; put the reference mask on the image grid"
         )
     if ref.dtype != np.bool_:
-        labels = np.unique(ref)
-        extra = labels[~np.isin(labels, (0, REFERENCE_LESION, REFERENCE_IGNORE))]
-        if extra.size:
+        # look only at the offending voxels: np.unique over a whole volume sorts it
+        odd = ref[(ref != 0) & (ref != REFERENCE_LESION) & (ref != REFERENCE_IGNORE)]
+        if odd.size:
             raise InputRejected(
-                f"reference mask has labels {extra.tolist()[:5]}; use 0 (background), 1 (WMH) "
-                "and 2 (ignore) only"
+                f"reference mask has labels {np.unique(odd).tolist()[:5]}; "
+                "use 0 (background), 1 (WMH) and 2 (ignore) only"
             )
     keep = ref != REFERENCE_IGNORE
     return (ref == REFERENCE_LESION) & keep, (seg != 0) & keep
@@ -194,7 +194,7 @@ def directed_border_distances(
     (a distance transform of the whole grid is far slower on full-size volumes). Empty when ``a``
     is empty; raises ValueError when ``b`` is empty.
     """
-    _voxel_ml(spacing_mm)
+    _voxel_ml(spacing_mm)  # validates the spacing
     scale = np.asarray(spacing_mm, dtype=np.float64)
     points_b = np.argwhere(border(b)) * scale
     if points_b.size == 0:

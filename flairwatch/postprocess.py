@@ -298,25 +298,25 @@ def _describe(
 def lesion_rows(result: LesionResult) -> list[dict[str, object]]:
     """Rows for the per-lesion CSV, one dict per lesion, largest first.
 
-    Keys are :data:`LESION_COLUMNS` in order (units in the names): ``lesion``, ``voxels``, ``volume_mm3``, ``volume_ml``,
-    ``centroid_x_lps_mm``, ``centroid_y_lps_mm``, ``centroid_z_lps_mm`` (patient LPS: x to the
-    Left, y to Posterior, z to Superior), ``max_probability``, ``mean_probability``. Volumes are
-    rounded to 0.001 mm^3 / 0.000001 mL, coordinates to 0.01 mm, probabilities to 0.0001.
+    Keys are :data:`LESION_COLUMNS` in order (units in the names): ``lesion``, ``voxels``,
+    ``volume_mm3``, ``volume_ml``, ``centroid_x_lps_mm``, ``centroid_y_lps_mm``,
+    ``centroid_z_lps_mm`` (patient LPS: x to the Left, y to Posterior, z to Superior),
+    ``max_probability``, ``mean_probability``. Volumes are rounded to 0.001 mm^3 / 0.000001 mL,
+    coordinates to 0.01 mm, probabilities to 0.0001.
     """
     rows: list[dict[str, object]] = []
     for lesion in result.lesions:
         x, y, z = lesion.centroid_lps_mm
-        rows.append(
-            {
-                "lesion": lesion.label,
-                "voxels": lesion.voxels,
-                "volume_mm3": round(lesion.volume_mm3, 3),
-                "volume_ml": round(lesion.volume_mm3 / 1000.0, 6),
-                "centroid_x_lps_mm": round(x, 2),
-                "centroid_y_lps_mm": round(y, 2),
-                "centroid_z_lps_mm": round(z, 2),
-                "max_probability": round(lesion.max_probability, 4),
-                "mean_probability": round(lesion.mean_probability, 4),
-            }
+        values = (
+            lesion.label,
+            lesion.voxels,
+            round(lesion.volume_mm3, 3),
+            round(lesion.volume_mm3 / 1000.0, 6),
+            round(x, 2),
+            round(y, 2),
+            round(z, 2),
+            round(lesion.max_probability, 4),
+            round(lesion.mean_probability, 4),
         )
+        rows.append(dict(zip(LESION_COLUMNS, values, strict=True)))
     return rows
