@@ -12,6 +12,8 @@ import pytest
 import SimpleITK as sitk
 from nibabel.orientations import aff2axcodes
 from nibabel.testing import data_path as nibabel_data_path
+from pydicom.dataset import Dataset, FileMetaDataset
+from pydicom.uid import EnhancedMRImageStorage, ExplicitVRLittleEndian, generate_uid
 
 from flairwatch.errors import InputRejected
 from flairwatch.load import load_nifti, load_series, stack_geometry, volume_from_datasets
@@ -275,3 +277,96 @@ def test_pydicom_reads_what_we_wrote(tmp_path: Path) -> None:
     in_memory = volume_from_datasets([pydicom.dcmread(r.path) for r in series.files], "t")
     np.testing.assert_array_equal(from_files.data, in_memory.data)
     np.testing.assert_allclose(from_files.affine_lps, in_memory.affine_lps)
+
+
+def test_jpeg_lossless_process_14_made_by_gdcm(tmp_path: Path) -> None:
+    # No JPEG Lossless (Process 14) file ships with pydicom (CHECK-SOURCES.md), so GDCM, inside
+    # SimpleITK, writes one: three slices, lossless, so the decode must give back the input.
+    rng = np.random.default_rng(1)
+    stack = rng.integers(0, 3000, size=(3, 7, 5)).astype(np.int16)  # [k, j, i]
+    for k in range(3):
+        image = sitk.GetImageFromArray(stack[k])
+        image.SetSpacing((1.3, 0.9))  # along i (column spacing), along j (row spacing)
+        for tag, value in [
+            ("0008|0016", "1.2.840.10008.5.1.4.1.1.4"),  # MR Image Storage
+            ("0008|0060", "MR"),
+            ("0020|000d", "1.2.826.0.1.3680043.8.498.78"),
+            ("0020|000e", "1.2.826.0.1.3680043.8.498.77"),
+            ("0008|0018", f"1.2.826.0.1.3680043.8.498.79.{k}"),
+            ("0020|0032", f"1\\2\\{3 + 2.5 * k}"),
+            ("0020|0037", "1\\0\\0\\0\\1\\0"),
+            ("0028|0030", "0.9\\1.3"),
+        ]:
+            image.SetMetaData(tag, value)
+        writer = sitk.ImageFileWriter()
+        writer.KeepOriginalImageUIDOn()
+        writer.SetImageIO("GDCMImageIO")
+        writer.SetUseCompression(True)
+        writer.SetCompressor("JPEG")  # GDCM's JPEG is lossless Process 14, Selection Value 1
+        writer.SetFileName(str(tmp_path / f"s{2 - k}"))
+        writer.Execute(image)
+    syntax = pydicom.dcmread(tmp_path / "s0", stop_before_pixels=True).file_meta.TransferSyntaxUID
+    assert syntax == pydicom.uid.JPEGLosslessSV1
+    (series,) = series_in(tmp_path)
+    vol = load_series(series)
+    np.testing.assert_array_equal(vol.data, stack.transpose(2, 1, 0))
+    np.testing.assert_allclose(vol.spacing, (1.3, 0.9, 2.5))
+
+
+def _enhanced(frames: list[Dataset], *, shared_plane: bool) -> Dataset:
+    """An enhanced MR object holding classic slices as frames (PS3.3 C.7.6.16)."""
+    first = frames[0]
+    ds = Dataset()
+    ds.file_meta = FileMetaDataset()
+    ds.file_meta.TransferSyntaxUID = ExplicitVRLittleEndian
+    ds.SOPClassUID = EnhancedMRImageStorage
+    ds.SOPInstanceUID = generate_uid()
+    for keyword in (
+        "StudyInstanceUID", "SeriesInstanceUID", "Modality", "Rows", "Columns",
+        "SamplesPerPixel", "PhotometricInterpretation", "BitsAllocated", "BitsStored",
+        "HighBit", "PixelRepresentation",
+    ):  # fmt: skip
+        setattr(ds, keyword, getattr(first, keyword))
+    ds.NumberOfFrames = len(frames)
+    shared = Dataset()
+    per_frame = []
+    for frame in frames:
+        item = Dataset()
+        position = Dataset()
+        position.ImagePositionPatient = frame.ImagePositionPatient
+        item.PlanePositionSequence = [position]
+        transform = Dataset()
+        transform.RescaleSlope = frame.get("RescaleSlope", 1)
+        transform.RescaleIntercept = frame.get("RescaleIntercept", 0)
+        transform.RescaleType = "US"
+        item.PixelValueTransformationSequence = [transform]
+        per_frame.append(item)
+    orientation = Dataset()
+    orientation.ImageOrientationPatient = first.ImageOrientationPatient
+    measures = Dataset()
+    measures.PixelSpacing = first.PixelSpacing
+    measures.SliceThickness = 1.0
+    if shared_plane:
+        shared.PlaneOrientationSequence = [orientation]
+        shared.PixelMeasuresSequence = [measures]
+    else:
+        for item in per_frame:
+            item.PlaneOrientationSequence = [orientation]
+            item.PixelMeasuresSequence = [measures]
+    ds.SharedFunctionalGroupsSequence = [shared]
+    ds.PerFrameFunctionalGroupsSequence = per_frame
+    ds.PixelData = b"".join(bytes(f.PixelData) for f in frames)
+    return ds
+
+
+@pytest.mark.parametrize("shared_plane", [True, False], ids=["shared", "per-frame"])
+def test_enhanced_matches_the_same_classic_slices(shared_plane: bool) -> None:
+    # PS3.3 C.7.6.16: orientation and pixel measures may sit in the shared or per-frame
+    # functional groups; either way the volume equals the one from classic images
+    classic = oblique_stack(5, seed=3)
+    classic[1].RescaleSlope, classic[1].RescaleIntercept = 2.0, -10.0
+    enhanced = _enhanced(classic, shared_plane=shared_plane)
+    expected = volume_from_datasets(classic, "classic")
+    got = volume_from_datasets([enhanced], "enhanced")
+    np.testing.assert_array_equal(got.data, expected.data)
+    np.testing.assert_allclose(got.affine_lps, expected.affine_lps, atol=1e-9)
