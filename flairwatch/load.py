@@ -64,13 +64,17 @@ _DECODER_PACKAGES = types.MappingProxyType(
 _PIXEL_KEYWORDS = ("PixelData", "FloatPixelData", "DoubleFloatPixelData")
 
 
+def _printable(text: str, limit: int = 60) -> str:
+    """Text safe for a one-line message (control characters, newlines in names, become spaces)."""
+    return "".join(c if c.isprintable() else " " for c in text).strip()[:limit]
+
+
 def series_label(header: SeriesHeader) -> str:
     """Short one-line name of a series for messages: the end of its UID and its description."""
-    uid = header.series_uid
+    uid = _printable(header.series_uid, 64)
     label = f"series ...{uid[-12:].lstrip('.')}" if len(uid) > 12 else f"series {uid or '(no UID)'}"
     if header.series_description:
-        text = "".join(c if c.isprintable() else " " for c in header.series_description)
-        label += f" '{text.strip()[:40]}'"
+        label += f" '{_printable(header.series_description, 40)}'"
     return label
 
 
@@ -312,7 +316,7 @@ def _pixels(ds: Dataset, label: str) -> npt.NDArray[np.generic]:
         syntax = UID(str(ds.file_meta.TransferSyntaxUID)).name
         raise _reject(
             label,
-            f"pixel data cannot be decoded ({syntax}: {first[:120]})",
+            f"pixel data cannot be decoded ({syntax}: {_printable(first, 120)})",
             "the file is damaged or its compression unsupported; resend it uncompressed",
         ) from None
     return np.asarray(arr)
@@ -403,13 +407,13 @@ def read_datasets(series: Series) -> list[Dataset]:
         except OSError as exc:
             raise _reject(
                 label,
-                f"cannot read {record.path.name} ({exc.strerror or exc})",
+                f"cannot read {_printable(record.path.name)} ({exc.strerror or exc})",
                 "check that the file is still there and readable",
             ) from None
         except Exception as exc:  # pydicom raises many types on damaged files
             raise _reject(
                 label,
-                f"{record.path.name} is not readable DICOM ({type(exc).__name__})",
+                f"{_printable(record.path.name)} is not readable DICOM ({type(exc).__name__})",
                 "resend the series",
             ) from None
     return datasets
@@ -426,7 +430,7 @@ def load_nifti(path: Path) -> Volume:
     The file's best affine (sform, else qform) maps (i, j, k) to RAS mm; it is converted to LPS.
     A 4-D image is accepted only when its fourth dimension has length 1.
     """
-    label = f"file {path.name}"
+    label = f"file {_printable(path.name)}"
     try:
         img = nib.load(path)
         affine = np.asarray(img.affine, dtype=np.float64)  # type: ignore[attr-defined]
