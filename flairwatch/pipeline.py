@@ -30,7 +30,13 @@ from flairwatch.infer import Segmenter
 from flairwatch.load import load_nifti, load_series
 from flairwatch.manifest import ModelManifest, load_manifest
 from flairwatch.notice import BANNER, NOTICE_FILE, NOTICE_TEXT
-from flairwatch.postprocess import LesionResult, lesion_rows, threshold_and_clean
+from flairwatch.postprocess import (
+    LESION_COLUMNS,
+    LesionResult,
+    connected_components,
+    lesion_rows,
+    threshold_and_clean,
+)
 from flairwatch.qc_image import qc_montage, save_png
 from flairwatch.records import Series, SeriesHeader
 from flairwatch.volume import Volume
@@ -75,7 +81,7 @@ def _timed(timings: dict[str, float], stage: str) -> Iterator[None]:
 
 def _largest_component_filled(mask: np.ndarray) -> np.ndarray:
     """Keep the largest 26-connected component and fill its holes (an intracranial mask is one piece)."""
-    labels, n = ndimage.label(mask, structure=np.ones((3, 3, 3), dtype=bool))
+    labels, n = connected_components(mask, 26)
     if n == 0:
         return mask.astype(np.uint8)
     sizes = np.bincount(labels.ravel())[1:]
@@ -218,12 +224,10 @@ def _nifti_bytes(data: np.ndarray, volume: Volume) -> bytes:
 
 
 def _lesions_csv(result: LesionResult) -> bytes:
-    rows = lesion_rows(result)
     buf = io.StringIO()
-    columns = list(rows[0]) if rows else ["lesion", "volume_mm3", "voxels"]
-    writer = csv.DictWriter(buf, fieldnames=columns, lineterminator="\n")
+    writer = csv.DictWriter(buf, fieldnames=list(LESION_COLUMNS), lineterminator="\n")
     writer.writeheader()
-    writer.writerows(rows)
+    writer.writerows(lesion_rows(result))
     return buf.getvalue().encode("utf-8")
 
 

@@ -1,0 +1,149 @@
+"""`flairwatch process` end to end: real DICOM files, the tiny ONNX model, real result folders."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+import SimpleITK as sitk
+
+from flairwatch.cli import main
+from tests.series_fixtures import SeriesSpec, phantom_array, write_series
+
+
+def _tree_digest(folder: Path) -> dict[str, str]:
+    return {
+        str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+        for p in sorted(folder.rglob("*"))
+        if p.is_file()
+    }
+
+
+def _version_dirs(results: Path) -> list[Path]:
+    return sorted(p.parent for p in results.rglob("summary.json"))
+
+
+def test_flair_processed_other_series_skipped_junk_ignored(
+    tmp_path: Path, tiny_model_manifest: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    inbox = tmp_path / "inbox"
+    spec = SeriesSpec()
+    write_series(inbox / "mixed", spec)
+    write_series(
+        inbox / "mixed",
+        SeriesSpec(description="AX T1 SE", scanning_sequence="SE", inversion_time=None),
+    )
+    (inbox / "notes.txt").write_text("not dicom")
+    (inbox / "empty.dcm").write_bytes(b"")
+    before = _tree_digest(inbox)
+
+    results = tmp_path / "results"
+    rc = main(
+        ["process", str(inbox), "--results", str(results), "--model", str(tiny_model_manifest)]
+    )
+    out = capsys.readouterr().out
+    assert rc == 0, out
+    assert "skipped" in out and "AX T1 SE" in out
+    assert _tree_digest(inbox) == before, "process must never modify its input"
+
+    (vdir,) = _version_dirs(results)
+    names = sorted(p.name for p in vdir.iterdir())
+    assert names == sorted(
+        [
+            "wmh_mask.nii.gz",
+            "wmh_probability.nii.gz",
+            "summary.json",
+            "lesions.csv",
+            "qc.png",
+            "RESEARCH_ONLY.txt",
+        ]
+    )
+    summary = json.loads((vdir / "summary.json").read_text())
+    assert summary["patient_name"] is None and "Participant" not in json.dumps(summary)
+    assert "Participant" not in str(vdir) and "FW-0001" not in str(vdir)
+
+    # Geometry oracle: SimpleITK's series reader on the input; the mask must share its grid
+    reader = sitk.ImageSeriesReader()
+    reader.SetFileNames(
+        reader.GetGDCMSeriesFileNames(str(inbox / "mixed"), summary["series_instance_uid"])
+    )
+    ref = reader.Execute()
+    mask_img = sitk.ReadImage(str(vdir / "wmh_mask.nii.gz"))
+    assert mask_img.GetSize() == ref.GetSize()
+    np.testing.assert_allclose(mask_img.GetSpacing(), ref.GetSpacing(), atol=1e-4)
+    np.testing.assert_allclose(mask_img.GetOrigin(), ref.GetOrigin(), atol=1e-3)
+    np.testing.assert_allclose(mask_img.GetDirection(), ref.GetDirection(), atol=1e-6)
+
+    # The tiny model marks voxels brighter than 1.4 x tissue: exactly the written lesion blobs.
+    mask = np.asarray(nib.load(vdir / "wmh_mask.nii.gz").dataobj)
+    truth = phantom_array(spec) == 600
+    assert mask.dtype == np.uint8
+    assert np.array_equal(mask.astype(bool), truth)
+    # mL arithmetic, worked by hand: voxels x (1.0 x 1.0 x 3.0 mm^3) / 1000
+    assert summary["lesion_volume_ml"] == pytest.approx(truth.sum() * 3.0 / 1000, abs=1e-4)
+    assert summary["lesion_count"] == 2
+    assert summary["model"]["name"] == "tiny-threshold"
+    assert "RESEARCH USE ONLY" in (vdir / "RESEARCH_ONLY.txt").read_text()
+
+
+def test_second_run_adopts_and_changes_nothing(tmp_path: Path, tiny_model_manifest: Path) -> None:
+    write_series(tmp_path / "in", SeriesSpec())
+    args = [
+        "process",
+        str(tmp_path / "in"),
+        "--results",
+        str(tmp_path / "out"),
+        "--model",
+        str(tiny_model_manifest),
+    ]
+    assert main(args) == 0
+    before = _tree_digest(tmp_path / "out")
+    assert main(args) == 0
+    assert _tree_digest(tmp_path / "out") == before
+
+
+def test_bad_series_fails_with_one_line_and_exit_1(
+    tmp_path: Path, tiny_model_manifest: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    paths = write_series(tmp_path / "in", SeriesSpec())
+    paths[3].write_bytes(paths[3].read_bytes()[:-500])  # cut inside the pixel data
+    rc = main(
+        [
+            "process",
+            str(tmp_path / "in"),
+            "--results",
+            str(tmp_path / "out"),
+            "--model",
+            str(tiny_model_manifest),
+        ]
+    )
+    err = capsys.readouterr().err
+    assert rc == 1
+    assert "failed" in err and "Traceback" not in err
+    assert not list((tmp_path / "out").rglob("summary.json"))
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (["process", "/no/such/folder", "--results", "{tmp}/out"], "does not exist"),
+        (["process", "{tmp}", "--results", "{tmp}/out"], "lies inside input"),
+        (
+            ["process", "{tmp}", "--results", "{tmp}/../o", "--model", "{tmp}/none.yaml"],
+            "cannot read model manifest",
+        ),
+        (["process", "{tmp}", "--results", "{tmp}/../o", "--threshold", "2"], "threshold"),
+    ],
+)
+def test_usage_errors_exit_2_with_one_line(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], args: list[str], message: str
+) -> None:
+    write_series(tmp_path, SeriesSpec())
+    rc = main([a.replace("{tmp}", str(tmp_path)) for a in args])
+    err = capsys.readouterr().err.strip()
+    assert rc == 2
+    assert message in err and len(err.splitlines()) == 1
