@@ -169,6 +169,7 @@ def test_read_record_missing_uid(tmp_path: Path) -> None:
     assert read_record(tmp_path / "a").reason == "no Series Instance UID"
 
 
+@pytest.mark.filterwarnings("ignore:Invalid value for VR")
 def test_read_record_bad_numbers_become_none(tmp_path: Path) -> None:
     ds = slice_dataset((0, 0, 0))
     # distinctive valid values, then overwritten in the file bytes with invalid text of the

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import replace
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -184,6 +185,13 @@ def test_default_yaml_matches_defaults() -> None:
     assert rules_from_mapping(raw["select"]) == SelectRules()
     assert rules_from_mapping(None) == SelectRules()
     assert rules_from_mapping({}) == SelectRules()
+
+
+def test_config_example_select_block_matches_defaults() -> None:
+    # config.example.yaml documents the defaults: its `select` block must be them
+    example = Path(__file__).resolve().parent.parent / "config.example.yaml"
+    raw = yaml.safe_load(example.read_text())
+    assert rules_from_mapping(raw["select"]) == SelectRules()
 
 
 @pytest.mark.parametrize(
