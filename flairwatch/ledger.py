@@ -248,12 +248,19 @@ def _locked(exc: sqlite3.OperationalError) -> bool:
 class Ledger:
     """An open ledger. Use from one process and one thread; close it before forking."""
 
-    def __init__(self, path: Path) -> None:
+    def __init__(self, path: Path, *, readonly: bool = False) -> None:
         self.path = path
         self._pid = os.getpid()
         # isolation_level=None: we issue BEGIN IMMEDIATE ourselves
-        self._db = sqlite3.connect(path, timeout=BUSY_TIMEOUT_MS / 1000, isolation_level=None)
+        self._db = sqlite3.connect(
+            f"file:{path}?mode=ro" if readonly else str(path),
+            timeout=BUSY_TIMEOUT_MS / 1000,
+            isolation_level=None,
+            uri=readonly,
+        )
         self._db.execute(f"PRAGMA busy_timeout={BUSY_TIMEOUT_MS}")
+        if readonly:
+            return
         mode = self._db.execute("PRAGMA journal_mode=WAL").fetchone()[0]
         if str(mode).lower() != "wal":
             raise ConfigInvalid(f"ledger {path} cannot use WAL mode ({mode}); use a local disk")
@@ -279,6 +286,14 @@ class Ledger:
         if check_fs:
             check_local_disk(state_dir)
         return cls(state_dir / LEDGER_FILE)
+
+    @classmethod
+    def open_readonly(cls, state_dir: Path) -> Ledger:
+        """Open an existing ledger for reading only (status, reports)."""
+        path = state_dir / LEDGER_FILE
+        if not path.is_file():
+            raise ConfigInvalid(f"no ledger in {state_dir}; check 'state' or run 'watch' first")
+        return cls(path, readonly=True)
 
     def close(self) -> None:
         if os.getpid() == self._pid:
@@ -578,11 +593,11 @@ class Ledger:
         return {s: n for s, n in self.query("SELECT state, COUNT(*) FROM jobs GROUP BY state")}
 
     def recent_errors(self, limit: int) -> list[tuple[float, str, str, int, str]]:
-        """(finished, state, series UID, revision, error) of the latest failed or rejected jobs."""
+        """(finished, state, series key, revision, error) of the latest failed or rejected jobs."""
         return [
             (r[0], r[1], r[2], r[3], r[4])
             for r in self.query(
-                """SELECT j.finished, j.state, s.series_uid, s.revision, j.error FROM jobs j
+                """SELECT j.finished, j.state, s.series_key, s.revision, j.error FROM jobs j
                    JOIN series s ON s.id = j.series_id
                    WHERE j.state IN (?, ?) OR (j.state = ? AND j.error IS NOT NULL)
                    ORDER BY COALESCE(j.finished, j.started, j.created) DESC LIMIT ?""",
@@ -633,16 +648,17 @@ class Ledger:
     # ---- daemon heartbeat and backup -----------------------------------------------------
 
     def beat(
-        self, pid: int, state: str, now: float, *, inbox: str = "", started: float = 0
+        self, pid: int, state: str, now: float, *, inbox: str = "", started: float = 0.0
     ) -> None:
+        """Upsert the daemon's heartbeat row (``started``/``inbox`` kept when not given)."""
         with self.transaction() as db:
             db.execute(
                 """INSERT INTO heartbeat (id, pid, host, started, beat, state, inbox)
-                   VALUES (1,?,?,?,?,?,?) ON CONFLICT (id) DO UPDATE SET pid=excluded.pid,
+                   VALUES (1, ?, ?, ?, ?, ?, ?) ON CONFLICT (id) DO UPDATE SET pid=excluded.pid,
                    host=excluded.host, beat=excluded.beat, state=excluded.state,
-                   started=CASE WHEN excluded.started > 0 THEN excluded.started ELSE started END,
+                   started=CASE WHEN ? > 0 THEN excluded.started ELSE started END,
                    inbox=CASE WHEN excluded.inbox != '' THEN excluded.inbox ELSE inbox END""",
-                (pid, os.uname().nodename, started or now, now, state, inbox),
+                (pid, os.uname().nodename, started or now, now, state, inbox, started),
             )
 
     def backup_to(self, target: Path) -> None:

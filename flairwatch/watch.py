@@ -28,7 +28,7 @@ import shutil
 import signal
 import time
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from types import FrameType
 from typing import Any
@@ -95,6 +95,11 @@ def exclusive(state: Path) -> Iterator[None]:
         os.close(fd)
 
 
+def _unchanged(row: FileRow | None) -> FileRow | None:
+    """A ledger row as a scan would produce it (a scan does not know revisions)."""
+    return None if row is None else replace(row, series_id=None)
+
+
 class Signals:
     """First SIGTERM/SIGINT: finish running series, then stop. Second: stop at once."""
 
@@ -147,7 +152,7 @@ class Daemon:
             self.next_scan = now + self.cfg.rescan_seconds
             return
         known = self.ledger.known_files()
-        changed = [r for r in file_rows(scan) if known.get(r.path) != r]
+        changed = [r for r in file_rows(scan) if _unchanged(known.get(r.path)) != r]
         for row in changed:
             if row.reason and row.path not in known:
                 log.info("ignored %s: %s", row.path, row.reason)

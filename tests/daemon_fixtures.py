@@ -27,17 +27,21 @@ REPO = Path(__file__).resolve().parent.parent
 FLAIR = SeriesSpec()  # AX FLAIR: MR, ScanningSequence IR, InversionTime 2500 ms
 
 
-def stage_series(staging: Path, name: str, spec: SeriesSpec = FLAIR, **uids: str) -> list[Path]:
+def stage_series(
+    staging: Path, name: str, spec: SeriesSpec = FLAIR, *, series_uid: str | None = None
+) -> list[Path]:
     """Write one series outside the inbox (to be copied in later); returns its files."""
-    return write_series(staging / name, spec, **uids)
+    return write_series(staging / name, spec, series_uid=series_uid)
 
 
-def copy_in(paths: Sequence[Path], inbox: Path, subdir: str, *, interval: float = 0.0) -> None:
+def copy_in(
+    paths: Sequence[Path], inbox: Path, subdir: str, *, interval: float = 0.0, prefix: str = ""
+) -> None:
     """Copy files into ``inbox/subdir`` one by one (written in place, as many senders do)."""
     dest = inbox / subdir
     dest.mkdir(parents=True, exist_ok=True)
     for path in paths:
-        shutil.copyfile(path, dest / path.name)
+        shutil.copyfile(path, dest / f"{prefix}{path.name}")
         if interval:
             time.sleep(interval)
 
@@ -126,7 +130,7 @@ def jobs(state: Path) -> list[tuple[str, str, int, str | None, str | None]]:
         return []
     finally:
         db.close()
-    return [tuple(r) for r in rows]  # type: ignore[misc]
+    return [(r[0], r[1], r[2], r[3], r[4]) for r in rows]
 
 
 def states(state: Path) -> dict[str, list[str]]:
