@@ -71,7 +71,7 @@ def test_interleaved_series_and_a_late_instance(tmp_path: Path, tiny_model_manif
                 copy_in([path], tmp_path / "inbox", "flat", prefix=f"s{i}-")
             time.sleep(0.1)
         wait_for(
-            lambda: sorted(sum(states(tmp_path / "state").values(), [])) == ["done"] * 3,
+            lambda: [s for _, s, *_ in jobs(tmp_path / "state")] == ["done"] * 3,
             40,
             "three series done",
         )
