@@ -1,0 +1,105 @@
+"""Smoke test of the training script: a tiny run, exact resume, and the ONNX export round trip.
+
+Skipped when torch (the ``train`` extra) is not installed. The reference for the exported graph
+is torch itself (the network's own forward pass), and the manifest is checked by flairwatch's
+own loader and runner, which the runtime uses.
+"""
+
+from __future__ import annotations
+
+import importlib
+import sys
+from pathlib import Path
+from types import ModuleType
+
+import numpy as np
+import pytest
+
+torch = pytest.importorskip("torch")
+pytest.importorskip("onnx")
+
+from flairwatch.infer import Segmenter  # noqa: E402
+from flairwatch.manifest import load_manifest  # noqa: E402
+
+SCRIPTS = Path(__file__).resolve().parents[1] / "scripts"
+TINY = ["--widths", "4", "8", "8", "16", "--batch-size", "2", "--crop", "64", "--threads", "1"]
+
+
+def _scripts() -> tuple[ModuleType, ModuleType]:
+    if str(SCRIPTS) not in sys.path:
+        sys.path.insert(0, str(SCRIPTS))
+    return importlib.import_module("train_model"), importlib.import_module("wmhdata")
+
+
+def _fake_case(rng: np.random.Generator, k: int = 5) -> dict[str, np.ndarray]:
+    """A head-like disc near 1 with one bright blob (WMH) and an ignore patch, (K, 224, 224)."""
+    yy, xx = np.mgrid[:224, :224]
+    head = ((yy - 112) ** 2 + (xx - 112) ** 2) < 80**2
+    lesion = ((yy - 100) ** 2 + (xx - 120) ** 2) < 6**2
+    image = np.where(head, 1.0, 0.0) + 0.05 * rng.standard_normal((k, 224, 224))
+    image[:, lesion] += 1.0
+    wmh = np.zeros((k, 224, 224), np.uint8)
+    wmh[1:4, lesion] = 1
+    wmh[2, 150:155, 100:105] = 2
+    icv = np.broadcast_to(head, (k, 224, 224)).astype(np.uint8)
+    return {"image": image.astype(np.float16), "wmh": wmh, "icv": icv}
+
+
+@pytest.fixture()
+def cache(tmp_path: Path) -> Path:
+    _, wmhdata = _scripts()
+    rng = np.random.default_rng(7)
+    folder = tmp_path / "cache"
+    folder.mkdir()
+    for name, seed in (("gen-case-00001", 1), ("gen-case-00002", 2), ("val-gen-case-00010", 10)):
+        wmhdata.save_arrays(folder / f"{name}.npz", _fake_case(rng), seed=seed, source="test")
+    return folder
+
+
+def _run(train_model: ModuleType, cache: Path, out: Path, *extra: str) -> None:
+    argv = ["--cache", str(cache), "--bank", str(cache.parent / "no-bank"), "--out", str(out)]
+    assert train_model.main([*argv, *TINY, *extra]) == 0
+
+
+def test_two_steps_resume_exactly(cache: Path, tmp_path: Path) -> None:
+    train_model, _ = _scripts()
+    # two steps straight through...
+    _run(train_model, cache, tmp_path / "a", "--minutes", "5", "--max-steps", "2")
+    # ...equal one step, a stop, and a resumed second step (model, optimiser, RNG restored)
+    _run(train_model, cache, tmp_path / "b", "--minutes", "5", "--max-steps", "1")
+    _run(train_model, cache, tmp_path / "b", "--minutes", "5", "--max-steps", "2")
+    a = torch.load(tmp_path / "a" / "training-checkpoint.pt", weights_only=False)
+    b = torch.load(tmp_path / "b" / "training-checkpoint.pt", weights_only=False)
+    assert a["step"] == b["step"] == 2
+    assert a["cases"] == b["cases"] == ["gen-case-00001", "gen-case-00002"]  # never validation
+    for key, value in a["model"].items():
+        assert torch.equal(value, b["model"][key]), key
+    start = train_model.build_net((4, 8, 8, 16)).state_dict()
+    assert not torch.equal(start["head.weight"], a["model"]["head.weight"])  # it did learn
+
+
+def test_export_round_trip(cache: Path, tmp_path: Path) -> None:
+    train_model, _ = _scripts()
+    out = tmp_path / "model"
+    _run(train_model, cache, out, "--minutes", "5", "--max-steps", "2")
+    _run(train_model, cache, out, "--export", "--eval-cases", "0")
+    manifest = load_manifest(out / "model.yaml")  # hash and schema, as the runtime checks them
+    assert manifest.name == "wmh-synth" and manifest.version == "0.1.0"
+    assert manifest.output_channels == ("wmh", "intracranial")
+    assert manifest.grid.shape == (224, 224) and manifest.channels == 3
+    assert 0.0 < manifest.threshold < 1.0
+    assert "research" in manifest.intended_use
+    segmenter = Segmenter(manifest, threads=1)
+    x = np.random.default_rng(3).random((3, 3, 224, 224), dtype=np.float32)
+    got = segmenter.predict(x)
+    assert got.shape == (3, 2, 224, 224)  # (K, outputs, H, W) as the manifest declares
+    state = torch.load(out / "training-checkpoint.pt", weights_only=False)
+    net = train_model.build_net(tuple(state["widths"]))
+    net.load_state_dict(state["model"])
+    net.eval()
+    with torch.no_grad():
+        expected = torch.sigmoid(net(torch.from_numpy(x))).numpy()
+    # reference: the torch network itself; ONNX Runtime must reproduce it to float precision
+    np.testing.assert_allclose(got, expected, atol=1e-4)
+    card = (out / "MODEL_CARD.md").read_text(encoding="utf-8")
+    assert "Research use only" in card and "synthetic" in card
