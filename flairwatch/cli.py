@@ -26,6 +26,7 @@ _COMMAND_MODULES = (
     "flairwatch.phantom.cli",
     "flairwatch.watch",
     "flairwatch.status",
+    "flairwatch.validate",
 )
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130

@@ -1,0 +1,230 @@
+"""`flairwatch validate` end to end: case folders on disk, the tiny ONNX model, the output folder.
+
+The tiny model marks voxels brighter than 1.4 x tissue, which in the test series are exactly the
+two written lesion blobs (tests/series_fixtures.py), so its segmentation is known voxel by voxel
+and every Dice below can be worked by hand.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import shutil
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+from PIL import Image
+from scipy import ndimage
+
+from flairwatch.cli import main
+from flairwatch.errors import InputRejected
+from flairwatch.validate import case_facts, read_case
+from tests.series_fixtures import SeriesSpec, phantom_array, write_series
+
+SPEC = SeriesSpec()
+
+
+def spec_affine_ras(spec: SeriesSpec) -> np.ndarray:
+    """Voxel (i, j, k) -> RAS mm of a SeriesSpec stack, worked from DICOM PS3.3 C.7.6.2.1.1.
+
+    Equation C.7.6.2.1-1: column i steps along the row direction cosine times the column spacing
+    (Pixel Spacing[1]), row j along the column cosine times the row spacing (Pixel Spacing[0]),
+    slice k along the normal times the slice spacing, from Image Position (Patient) (LPS). NIfTI
+    is RAS (nifti1.h): negate the first two rows.
+    """
+    row, col = np.array(spec.orientation[:3]), np.array(spec.orientation[3:])
+    lps = np.eye(4)
+    lps[:3, 0] = row * spec.pixel_spacing[1]
+    lps[:3, 1] = col * spec.pixel_spacing[0]
+    lps[:3, 2] = np.cross(row, col) * spec.slice_spacing
+    lps[:3, 3] = spec.origin
+    return np.diag([-1.0, -1.0, 1.0, 1.0]) @ lps
+
+
+def write_nifti(path: Path, data: np.ndarray, affine_ras: np.ndarray) -> None:
+    img = nib.Nifti1Image(data, affine_ras)
+    img.set_qform(affine_ras, code=1)
+    img.set_sform(affine_ras, code=1)
+    nib.save(img, path)
+
+
+def dicom_case(root: Path, name: str, reference: np.ndarray, *, icv: bool = False) -> Path:
+    case = root / name
+    write_series(case / "image", SPEC)
+    write_nifti(case / "wmh_reference.nii.gz", reference.astype(np.uint8), spec_affine_ras(SPEC))
+    if icv:
+        head = (phantom_array(SPEC) > 0).astype(np.uint8)
+        write_nifti(case / "intracranial_mask.nii.gz", head, spec_affine_ras(SPEC))
+    return case
+
+
+# Hand count of the blobs in SPEC: a voxel is in a blob when di^2 + dj^2 + 4 dk^2 <= r^2.
+# Blob 1 (r = 3): dk = 0 gives the 29 lattice points of a disc of radius 3 in 7 rows (dj = -3..3),
+# dk = +-1 gives 21 points (di^2 + dj^2 <= 5) in 5 rows each: 71 voxels in 17 rows.
+# Blob 2 (r = 2): dk = 0 gives 13 points in 5 rows, dk = +-1 one point each: 15 voxels in 7 rows.
+BLOB1_VOXELS, BLOB2_VOXELS, ROWS_ALONG_I = 71, 15, 17 + 7
+VOXEL_MM3 = 1.0 * 1.0 * 3.0
+
+
+def blob_labels() -> np.ndarray:
+    """0 outside, 1 in blob 1, 2 in blob 2 (which blob is which: by the centre given in SPEC)."""
+    truth = phantom_array(SPEC) == 600
+    labels, n = ndimage.label(truth)
+    assert n == 2
+    first = labels[SPEC.lesions[0][0], SPEC.lesions[0][1], SPEC.lesions[0][2]]
+    return np.where(labels == first, 1, np.where(labels > 0, 2, 0)).astype(np.uint8)
+
+
+@pytest.fixture
+def cases(tmp_path: Path) -> Path:
+    root = tmp_path / "cases"
+    blobs = blob_labels()
+    truth = blobs > 0
+    assert truth.sum() == BLOB1_VOXELS + BLOB2_VOXELS  # the hand count above
+    exact = dicom_case(root, "a-exact", truth, icv=True)
+    (exact / "case.json").write_text(
+        json.dumps({"params": {"acquisition": {"kind": "2d_axial", "field_strength_t": 3.0}}})
+    )
+    # reference moved one voxel along i: each row of a blob loses one voxel of overlap
+    dicom_case(root, "b-shifted", np.roll(truth, 1, axis=0))
+    # blob 2 marked "ignore" (label 2): the model's voxels there must not count at all
+    dicom_case(root, "c-ignore", blobs)
+    # a NIfTI image on a 1 x 1 x 2 mm grid
+    nifti = root / "d-nifti"
+    nifti.mkdir(parents=True)
+    affine = np.diag([-1.0, -1.0, 2.0, 1.0])
+    write_nifti(nifti / "image.nii.gz", phantom_array(SPEC).astype(np.float32), affine)
+    write_nifti(nifti / "wmh_reference.nii.gz", truth.astype(np.uint8), affine)
+    return root
+
+
+def test_validate_scores_cases_and_writes_report(
+    cases: Path, tmp_path: Path, tiny_model_manifest: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    out = tmp_path / "report"
+    rc = main(
+        ["validate", "--cases", str(cases), "--out", str(out), "--model", str(tiny_model_manifest)]
+    )
+    printed = capsys.readouterr().out
+    assert rc == 0, printed
+    assert "[1/4] a-exact" in printed and "[4/4] d-nifti" in printed
+
+    with open(out / "cases.csv", newline="") as fh:
+        rows = {r["case"]: r for r in csv.DictReader(fh)}
+    assert sorted(rows) == ["a-exact", "b-shifted", "c-ignore", "d-nifti"]
+
+    exact = rows["a-exact"]
+    assert float(exact["dice"]) == 1.0
+    assert float(exact["hd95_mm"]) == 0.0
+    assert float(exact["intracranial_dice"]) == 1.0
+    assert exact["acquisition"] == "2d_axial" and float(exact["field_strength_t"]) == 3.0
+    # mL by hand: 86 voxels x 3 mm^3 / 1000
+    assert float(exact["reference_ml"]) == pytest.approx(86 * VOXEL_MM3 / 1000, abs=1e-4)
+    # both blobs (213 and 45 mm^3) are at least 30 mm^3
+    assert int(exact["reference_lesions_30mm3"]) == 2 and float(exact["lesion_recall_30mm3"]) == 1
+
+    # Dice = 2 |A and B| / (|A| + |B|) (2019 IEEE TMI WMH challenge definition): a one-voxel
+    # shift along i keeps all but one voxel of each row: 86 - 24 = 62 shared voxels.
+    shared = BLOB1_VOXELS + BLOB2_VOXELS - ROWS_ALONG_I
+    hand = 2 * shared / (2 * (BLOB1_VOXELS + BLOB2_VOXELS))
+    assert hand == pytest.approx(124 / 172)
+    assert float(rows["b-shifted"]["dice"]) == pytest.approx(hand, abs=1e-4)
+    assert rows["b-shifted"]["intracranial_dice"] == ""  # the case has no intracranial mask
+
+    ignore = rows["c-ignore"]
+    assert float(ignore["dice"]) == 1.0
+    assert int(ignore["reference_lesions"]) == 1
+    assert float(ignore["segmented_ml"]) == pytest.approx(BLOB1_VOXELS * VOXEL_MM3 / 1000, abs=1e-4)
+    assert float(ignore["false_positive_ml"]) == 0.0
+
+    nifti = rows["d-nifti"]
+    assert float(nifti["dice"]) == 1.0
+    assert float(nifti["reference_ml"]) == pytest.approx(86 * 2.0 / 1000, abs=1e-4)
+
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["cases_scored"] == 4 and summary["cases_failed"] == 0
+    assert summary["model"]["name"] == "tiny-threshold"
+    assert "RESEARCH USE ONLY" in summary["notice"]
+    assert summary["overall"]["median_dice"] == 1.0
+    # every load bin is listed; the empty ones carry null, never NaN (not valid JSON)
+    assert summary["by_load_bin"]["0"]["cases"] == 0
+    assert summary["by_load_bin"]["0"]["median_dice"] is None
+    assert summary["by_load_bin"]["<1"]["cases"] == 4
+    assert set(summary["by_acquisition"]) == {"2d_axial", "unknown"}
+    assert "NaN" not in (out / "summary.json").read_text()
+
+    report = (out / "report.md").read_text()
+    assert "RESEARCH USE ONLY" in report and "| <1 | 4 |" in report
+    for png in ("dice_vs_volume.png", "dice_by_load_bin.png"):
+        with Image.open(out / png) as img:
+            assert img.format == "PNG" and img.size[0] > 300
+    assert "RESEARCH USE ONLY" in (out / "RESEARCH_ONLY.txt").read_text()
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".report")]
+
+
+def test_broken_case_exits_1_others_scored(
+    cases: Path, tmp_path: Path, tiny_model_manifest: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    two = cases / "e-two-series"
+    write_series(two / "image", SPEC)
+    write_series(two / "image" / "more", SPEC)
+    (cases / "f-no-reference" / "image").mkdir(parents=True)
+    write_series(cases / "f-no-reference" / "image", SPEC)
+
+    rc = main(["validate", "--cases", str(cases), "--model", str(tiny_model_manifest)])
+    captured = capsys.readouterr()
+    assert rc == 1
+    errors = [line for line in captured.err.splitlines() if "failed" in line]
+    assert len(errors) == 2 and "Traceback" not in captured.err
+    assert "holds 2 DICOM series" in errors[0] and "e-two-series" in errors[0]
+    assert "no wmh_reference.nii.gz" in errors[1]
+
+    out = tmp_path / "validation-tiny-threshold-0.0.1"  # default: beside the cases folder
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["cases_scored"] == 4 and summary["cases_failed"] == 2
+    assert [f["case"] for f in summary["failures"]] == ["e-two-series", "f-no-reference"]
+    assert "e-two-series" in (out / "report.md").read_text()
+
+    # a second run replaces the earlier output in place
+    shutil.rmtree(cases / "e-two-series")
+    shutil.rmtree(cases / "f-no-reference")
+    assert main(["validate", "--cases", str(cases), "--model", str(tiny_model_manifest)]) == 0
+    assert json.loads((out / "summary.json").read_text())["cases_failed"] == 0
+
+
+def test_refuses_unrelated_out_folder_and_missing_cases(
+    cases: Path, tmp_path: Path, tiny_model_manifest: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    precious = tmp_path / "precious"
+    precious.mkdir()
+    (precious / "keep.txt").write_text("mine")
+    model = ["--model", str(tiny_model_manifest)]
+    assert main(["validate", "--cases", str(cases), "--out", str(precious), *model]) == 2
+    assert (precious / "keep.txt").read_text() == "mine"
+    assert main(["validate", "--cases", str(cases), "--out", str(cases / "r"), *model]) == 2
+    assert main(["validate", "--cases", str(tmp_path / "none"), *model]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 3 and "exists and is not" in err[0] and "inside --cases" in err[1]
+
+
+def test_reference_on_another_grid_or_with_odd_labels_is_refused(cases: Path) -> None:
+    case = cases / "b-shifted"
+    bad = np.zeros((64, 64, 12), dtype=np.uint8)
+    bad[0, 0, 0] = 3
+    write_nifti(case / "wmh_reference.nii.gz", bad, spec_affine_ras(SPEC))
+    with pytest.raises(InputRejected, match="other than 0, 1 and 2"):
+        read_case(case)
+    write_nifti(case / "wmh_reference.nii.gz", bad[:, :, :10], spec_affine_ras(SPEC))
+    with pytest.raises(InputRejected, match="does not lie on the image grid"):
+        read_case(case)
+
+
+def test_case_facts_found_at_any_depth() -> None:
+    assert case_facts({"kind": "3d_sagittal", "field_strength_t": 1.5}) == ("3d_sagittal", 1.5)
+    assert case_facts({"acquisition": {"kind": "2d_axial", "field_strength_t": 3}}) == (
+        "2d_axial",
+        3.0,
+    )
+    assert case_facts({"note": "no facts"}) == (None, None)
