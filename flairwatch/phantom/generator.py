@@ -1,0 +1,193 @@
+"""Assemble one phantom: anatomy, lesions, signal, scan. Pure: reads only the cached template.
+
+All outputs lie on the acquisition grid: a :class:`~flairwatch.volume.Volume` with axes (i, j, k)
+= (column, row, slice) and an LPS affine, exactly as a DICOM reader builds it from the series.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+import numpy.typing as npt
+
+from flairwatch.phantom.acquire import (
+    acquisition_affine,
+    add_rician_noise,
+    bias_field,
+    make_sampler,
+    rotation,
+    sample_maps,
+    slice_profile,
+)
+from flairwatch.phantom.anatomy import Template, build_subject, load_template
+from flairwatch.phantom.lesions import make_lesions
+from flairwatch.phantom.noise import upsample_inplane
+from flairwatch.phantom.params import PhantomParams, rng_for
+from flairwatch.phantom.render import Sequence, other_sequence, render_signal, tissue_signals
+from flairwatch.volume import Volume
+
+Matrix = npt.NDArray[np.float64]
+# Distance (mm, template LPS z) from the intracranial centre to the centre of an axial stack:
+# stacks start at the skull base and end above the vertex.
+AXIAL_CENTER_RAISE_MM = 8.0
+# In-plane pixel size (mm) at which template maps are sampled before upsampling: the 1 mm
+# template holds no finer detail.
+INTERMEDIATE_MM = 1.0
+
+
+@dataclass(frozen=True, eq=False)
+class PhantomCase:
+    """One generated phantom.
+
+    ``image`` is float32 signal in stored pixel units (WM about ``params.signal_scale``);
+    ``wmh`` the truth mask (uint8 0/1: lesion partial-volume fraction >= 0.5);
+    ``intracranial`` the intracranial mask (uint8 0/1). All three share the acquisition grid.
+    """
+
+    image: Volume
+    wmh: Volume
+    intracranial: Volume
+    params: PhantomParams
+
+    @property
+    def lesion_volume_ml(self) -> float:
+        """Truth lesion volume on the acquisition grid, mL."""
+        return float(self.wmh.data.sum()) * self.wmh.voxel_volume_mm3 / 1000.0
+
+    @property
+    def intracranial_volume_ml(self) -> float:
+        """Intracranial volume on the acquisition grid, mL."""
+        return float(self.intracranial.data.sum()) * self.intracranial.voxel_volume_mm3 / 1000.0
+
+
+def head_pose(params: PhantomParams, tpl: Template) -> Matrix:
+    """4x4 map from template LPS mm to patient LPS mm (scale, rotation, small shift)."""
+    rng = rng_for(params.seed, "pose")
+    shift = rng.normal(0.0, 3.0, 3)
+    center = np.asarray(tpl.icv_center_lps)
+    pose = np.eye(4)
+    pose[:3, :3] = rotation(params.head_rotation_deg) * params.head_scale
+    pose[:3, 3] = shift - pose[:3, :3] @ center
+    return pose
+
+
+def _flair(params: PhantomParams) -> Sequence:
+    a = params.acquisition
+    return Sequence("ir", a.tr_ms, a.te_ms, a.ti_ms, a.field_strength_t)
+
+
+def _render(
+    params: PhantomParams, seq: Sequence, *, with_truth: bool
+) -> tuple[Volume, Volume | None, Volume | None]:
+    tpl = load_template(params.template_mm)
+    acq = params.acquisition
+    seed = params.seed
+    subj = build_subject(
+        tpl,
+        atrophy=params.atrophy,
+        skull_mm=params.skull_mm,
+        fat_mm=params.fat_mm,
+        rng=rng_for(seed, "anatomy"),
+    )
+    les = make_lesions(
+        tpl,
+        subj,
+        load_ml=params.lesion_load_ml / params.head_scale**3,
+        periventricular=params.periventricular,
+        severity_range=params.lesion_brightness,
+        rng=rng_for(seed, "lesions"),
+    )
+    signal = render_signal(
+        tpl,
+        subj,
+        les,
+        seq,
+        lining=params.ventricle_lining,
+        inflow=params.inflow,
+        cortex_patches=params.cortex_patches,
+        rng=rng_for(seed, "lookalikes"),
+    )
+
+    pose = head_pose(params, tpl)
+    center_tpl = np.array(tpl.icv_center_lps)
+    if acq.kind == "2d_axial":
+        center_tpl[2] += AXIAL_CENTER_RAISE_MM
+    acq_aff = acquisition_affine(acq, (pose @ np.append(center_tpl, 1.0))[:3])
+
+    # Intermediate grid: in-plane pixels grouped f x f so that its pixels are ~1 mm.
+    f = max(1.0, INTERMEDIATE_MM / acq.inplane_mm)
+    rows, cols = acq.matrix
+    int_shape = (math.ceil((cols - 1) / f) + 1, math.ceil((rows - 1) / f) + 1, acq.n_slices)
+    coarsen = np.diag([f, f, 1.0, 1.0])
+    int_aff = acq_aff @ coarsen
+    int_to_tpl = np.linalg.inv(tpl.affine_lps) @ np.linalg.inv(pose) @ int_aff
+    int_spacing = (acq.inplane_mm * f, acq.inplane_mm * f, acq.slice_spacing_mm)
+
+    # Only the part of the plane that can see the template grid is sampled.
+    corners = np.array(
+        [
+            [x, y, z, 1.0]
+            for x in (0, tpl.shape[0])
+            for y in (0, tpl.shape[1])
+            for z in (0, tpl.shape[2])
+        ]
+    )
+    uvw = (np.linalg.inv(int_to_tpl) @ corners.T)[:3]
+    margin = 3.0 + 4.0 * params.deformation_mm / int_spacing[0]
+    box_uv = tuple(
+        slice(
+            int(max(0, math.floor(uvw[a].min() - margin))),
+            int(min(int_shape[a], math.ceil(uvw[a].max() + margin))),
+        )
+        for a in (0, 1)
+    )
+    sampler = make_sampler(
+        int_to_tpl,
+        int_shape,
+        int_spacing,
+        params.deformation_mm,
+        tpl.voxel_mm,
+        rng_for(seed, "deform"),
+    )
+    planes, weights = slice_profile(acq)
+    maps: list[tuple[npt.NDArray[np.float32], tuple[slice, slice, slice] | None]] = [(signal, None)]
+    if with_truth:
+        maps.append((tpl.icv, None))
+        if les.volume_ml > 0:
+            maps.append(((subj.wm[les.box] * les.fraction).astype(np.float32), les.box))
+    sampled = sample_maps(sampler, maps, int_shape, (box_uv[0], box_uv[1]), planes, weights)
+
+    image = sampled[0] * bias_field(
+        int_shape, int_spacing, params.bias_strength, rng_for(seed, "bias")
+    )
+    image = upsample_inplane(image, f, (cols, rows))
+    gain = params.signal_scale / tissue_signals(seq)["wm"]
+    noise_rng = rng_for(seed, f"noise-{seq.kind}-{seq.tr_ms}-{seq.te_ms}")
+    image = add_rician_noise(
+        image * np.float32(gain), params.noise_level * params.signal_scale, noise_rng
+    )
+    image_vol = Volume(image.astype(np.float32), acq_aff)
+    if not with_truth:
+        return image_vol, None, None
+    icv = upsample_inplane(sampled[1], f, (cols, rows)) >= 0.5
+    if len(sampled) > 2:
+        wmh = upsample_inplane(sampled[2], f, (cols, rows)) >= 0.5
+    else:
+        wmh = np.zeros(icv.shape, dtype=bool)
+    return image_vol, Volume(wmh.astype(np.uint8), acq_aff), Volume(icv.astype(np.uint8), acq_aff)
+
+
+def generate(params: PhantomParams) -> PhantomCase:
+    """Render one FLAIR phantom with its WMH truth and intracranial mask (no disk writes)."""
+    image, wmh, icv = _render(params, _flair(params), with_truth=True)
+    assert wmh is not None and icv is not None
+    return PhantomCase(image=image, wmh=wmh, intracranial=icv, params=params)
+
+
+def make_other_contrast(case: PhantomCase, contrast: str = "t1") -> Volume:
+    """A non-FLAIR series of the same head on the same grid: ``"t1"`` or ``"t2"`` spin echo."""
+    seq = other_sequence(contrast, case.params.acquisition.field_strength_t)
+    image, _, _ = _render(case.params, seq, with_truth=False)
+    return image
