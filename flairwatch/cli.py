@@ -27,6 +27,8 @@ _COMMAND_MODULES = (
     "flairwatch.watch",
     "flairwatch.status",
     "flairwatch.validate",
+    "flairwatch.export",
+    "flairwatch.qc_marks",
 )
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
