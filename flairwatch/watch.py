@@ -336,8 +336,7 @@ class Daemon:
     def run(self) -> int:
         """Run until stopped (or, with ``once``, until the inbox's series are handled)."""
         started = self.clock()
-        for path in results.remove_incomplete(self.results):
-            log.warning("removed half-built result folder %s", path)
+        results.remove_incomplete(self.results)  # logs each folder it removes
         again = self.ledger.requeue_running(started)
         if again:
             log.warning("%d series were running when the daemon stopped; queued again", len(again))

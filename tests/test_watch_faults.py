@@ -1,0 +1,190 @@
+"""Daemon faults: junk input, kill -9, crash leftovers, files that arrive while it is down,
+a watched folder deleted and recreated, hostile header values.
+
+Real `flairwatch watch` processes, real files, real watchdog and SQLite.
+"""
+
+from __future__ import annotations
+
+import os
+import random
+import re
+import shutil
+import signal
+import sqlite3
+import time
+from dataclasses import replace
+from pathlib import Path
+
+from tests.daemon_fixtures import (
+    FLAIR,
+    complete_results,
+    copy_in,
+    half_built,
+    jobs,
+    run_once,
+    series_uid_of,
+    stage_series,
+    start_daemon,
+    states,
+    stop,
+    wait_for,
+    write_config,
+    write_junk,
+)
+
+
+def _all_files(root: Path) -> list[Path]:
+    return sorted(p for p in root.rglob("*") if p.is_file())
+
+
+def test_junk_never_gives_a_result(tmp_path: Path, tiny_model_manifest: Path) -> None:
+    cfg = write_config(tmp_path, tiny_model_manifest, settle=1.0, quarantine=True)
+    kinds = write_junk(tmp_path / "inbox" / "junk", tmp_path / "staging", count=200)
+    good = stage_series(tmp_path / "staging", "good")
+    copy_in(good, tmp_path / "inbox", "good")
+    before = len(_all_files(tmp_path / "inbox"))
+    assert before == 200 + len(good)
+
+    # exit 1: one FLAIR series had a cut file and was refused
+    assert run_once(cfg, tmp_path / "once.log") == 1
+
+    by_uid = {uid: (st, err) for uid, st, _rev, err, _path in jobs(tmp_path / "state")}
+    assert by_uid[series_uid_of(good)] == ("done", None)
+    for uid, kind in kinds.items():
+        state, error = by_uid.get(uid, ("not a series", None))
+        if kind in ("localizer", "non-FLAIR"):
+            assert state == "skipped", kind
+        elif kind in ("truncated pixel data", "no pixel data"):
+            assert state == "rejected" and error, kind
+        else:
+            assert state == "not a series", kind
+    (result,) = complete_results(tmp_path / "results")
+    assert "summary.json" in os.listdir(result)
+    db = sqlite3.connect(tmp_path / "state" / "ledger.sqlite3")
+    rules = dict(db.execute("SELECT series_uid, select_rule FROM series").fetchall())
+    junk_rows = db.execute("SELECT COUNT(*) FROM files WHERE reason IS NOT NULL").fetchone()[0]
+    db.close()
+    uid_of = {k: u for u, k in kinds.items()}
+    assert rules[uid_of["localizer"]] == "description_excluded"
+    assert rules[uid_of["non-FLAIR"]] in ("inversion_time", "description")
+    assert junk_rows >= 200 - 3 * 12 - 3  # every unusable file is recorded with its reason
+    # nothing lost: the refused series moved to quarantine, everything else left in place
+    moved = _all_files(tmp_path / "quarantine")
+    assert len(moved) == 12 + 1  # the cut series and the image without pixel data
+    assert len(_all_files(tmp_path / "inbox")) + len(moved) == before
+
+
+def test_kill_9_at_random_moments_gives_one_result_per_series(
+    tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    cfg = write_config(tmp_path, tiny_model_manifest, settle=0.5)
+    uids = []
+    for i in range(6):
+        files = stage_series(tmp_path / "staging", f"k{i}")
+        copy_in(files, tmp_path / "inbox", f"k{i}")
+        uids.append(series_uid_of(files))
+    rng = random.Random(20261201)
+    for cycle in range(5):
+        proc = start_daemon(cfg, tmp_path / "daemon.log")
+        time.sleep(rng.uniform(1.0, 3.0))
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(10)
+        if cycle == 0:  # leftovers of a crash inside a write: a half-built folder
+            (tmp_path / "results" / "sX" / "tX" / "eX" / ".building-v-1234").mkdir(parents=True)
+    proc = start_daemon(cfg, tmp_path / "daemon.log")
+    try:
+        wait_for(
+            lambda: (
+                sorted(states(tmp_path / "state").items()) == [(u, ["done"]) for u in sorted(uids)]
+            ),
+            60,
+            "every series done",
+        )
+    finally:
+        assert stop(proc) == 0
+    results = complete_results(tmp_path / "results")
+    assert len(results) == len(uids)  # exactly one version folder per series
+    assert half_built(tmp_path / "results") == []
+    db = sqlite3.connect(tmp_path / "state" / "ledger.sqlite3")
+    assert db.execute("SELECT COUNT(*), SUM(current) FROM results").fetchone() == (6, 6)
+    db.close()
+
+
+def test_complete_folder_unknown_to_ledger_is_adopted(
+    tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    # crash between the rename into place and the ledger update: a new ledger, same results
+    cfg = write_config(tmp_path, tiny_model_manifest, settle=0.5)
+    copy_in(stage_series(tmp_path / "staging", "a"), tmp_path / "inbox", "a")
+    assert run_once(cfg, tmp_path / "once.log") == 0
+    (result,) = complete_results(tmp_path / "results")
+    stamp = (result / "summary.json").stat().st_mtime_ns
+    key = (tmp_path / "state" / "installation.key").read_bytes()
+    shutil.rmtree(tmp_path / "state")
+    (tmp_path / "state").mkdir()
+    (tmp_path / "state" / "installation.key").write_bytes(key)
+    assert run_once(cfg, tmp_path / "once.log") == 0
+    assert complete_results(tmp_path / "results") == [result]
+    assert (result / "summary.json").stat().st_mtime_ns == stamp  # not recomputed
+    db = sqlite3.connect(tmp_path / "state" / "ledger.sqlite3")
+    assert db.execute("SELECT adopted, current FROM results").fetchall() == [(1, 1)]
+    db.close()
+
+
+def test_files_that_arrive_while_down_are_found_at_start(
+    tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    # no event will ever report these files: only the start-up scan can find them
+    cfg = write_config(tmp_path, tiny_model_manifest, settle=1.0, rescan=600)
+    proc = start_daemon(cfg, tmp_path / "daemon.log")
+    wait_for(lambda: "ready" in (tmp_path / "daemon.log").read_text(), 30, "daemon start")
+    assert stop(proc) == 0
+    files = stage_series(tmp_path / "staging", "down")
+    copy_in(files, tmp_path / "inbox", "down")
+    proc = start_daemon(cfg, tmp_path / "daemon.log")
+    try:
+        wait_for(lambda: states(tmp_path / "state") == {series_uid_of(files): ["done"]}, 30, "done")
+    finally:
+        assert stop(proc) == 0
+
+
+def test_watched_folder_recreated_is_watched_again(
+    tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    # the watch on a deleted folder sees nothing of its successor; the supervisor must notice
+    cfg = write_config(tmp_path, tiny_model_manifest, settle=1.0, rescan=600)
+    proc = start_daemon(cfg, tmp_path / "daemon.log")
+    try:
+        wait_for(lambda: "ready" in (tmp_path / "daemon.log").read_text(), 30, "daemon start")
+        shutil.rmtree(tmp_path / "inbox")
+        time.sleep(0.5)
+        (tmp_path / "inbox").mkdir()
+        files = stage_series(tmp_path / "staging", "again")
+        copy_in(files, tmp_path / "inbox", "again")
+        wait_for(lambda: states(tmp_path / "state") == {series_uid_of(files): ["done"]}, 30, "done")
+    finally:
+        assert stop(proc) == 0
+    assert "restarting it" in (tmp_path / "daemon.log").read_text()
+
+
+def test_hostile_header_values_stay_inside_results(
+    tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    base = tmp_path / "site"
+    base.mkdir()
+    cfg = write_config(base, tiny_model_manifest, settle=0.5)
+    spec = replace(FLAIR, patient_id="../../../../escape\x1b[2J", description="../../FLAIR/..")
+    files = stage_series(tmp_path / "staging", "evil", spec, series_uid="../../../../evil")
+    copy_in(files, base / "inbox", "evil")
+    outside_before = sorted(p.name for p in tmp_path.iterdir())
+    assert run_once(cfg, base / "once.log") == 0
+    assert sorted(p.name for p in tmp_path.iterdir()) == outside_before
+    results = (base / "results").resolve()
+    (result,) = complete_results(base / "results")
+    for path in (base / "results").rglob("*"):
+        assert results in path.resolve().parents
+        rel = path.relative_to(base / "results")
+        # result paths are built from keys only: short hex keys and fixed file names (DESIGN.md)
+        assert all(re.fullmatch(r"[A-Za-z0-9._-]+", part) for part in rel.parts), rel
+    assert "escape" not in str(result) and "evil" not in str(result)
