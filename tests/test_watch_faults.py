@@ -1,5 +1,5 @@
-"""Daemon faults: junk input, kill -9, crash leftovers, files that arrive while it is down,
-a watched folder deleted and recreated, hostile header values.
+"""Daemon faults: junk input, kill -9, crash leftovers, a watched folder deleted and recreated,
+hostile header values.
 
 Real `flairwatch watch` processes, real files, real watchdog and SQLite.
 """
@@ -85,9 +85,9 @@ def test_kill_9_at_random_moments_gives_one_result_per_series(
         copy_in(files, tmp_path / "inbox", f"k{i}")
         uids.append(series_uid_of(files))
     rng = random.Random(20261201)
-    for cycle in range(5):
+    for cycle in range(3):
         proc = start_daemon(cfg, tmp_path / "daemon.log")
-        time.sleep(rng.uniform(1.0, 3.0))
+        time.sleep(rng.uniform(1.0, 2.5))
         proc.send_signal(signal.SIGKILL)
         proc.wait(10)
         if cycle == 0:  # leftovers of a crash inside a write: a half-built folder
@@ -130,23 +130,6 @@ def test_complete_folder_unknown_to_ledger_is_adopted(
     db = sqlite3.connect(tmp_path / "state" / "ledger.sqlite3")
     assert db.execute("SELECT adopted, current FROM results").fetchall() == [(1, 1)]
     db.close()
-
-
-def test_files_that_arrive_while_down_are_found_at_start(
-    tmp_path: Path, tiny_model_manifest: Path
-) -> None:
-    # no event will ever report these files: only the start-up scan can find them
-    cfg = write_config(tmp_path, tiny_model_manifest, settle=1.0, rescan=600)
-    proc = start_daemon(cfg, tmp_path / "daemon.log")
-    wait_for(lambda: "ready" in (tmp_path / "daemon.log").read_text(), 30, "daemon start")
-    assert stop(proc) == 0
-    files = stage_series(tmp_path / "staging", "down")
-    copy_in(files, tmp_path / "inbox", "down")
-    proc = start_daemon(cfg, tmp_path / "daemon.log")
-    try:
-        wait_for(lambda: states(tmp_path / "state") == {series_uid_of(files): ["done"]}, 30, "done")
-    finally:
-        assert stop(proc) == 0
 
 
 def test_watched_folder_recreated_is_watched_again(

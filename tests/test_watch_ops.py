@@ -17,10 +17,10 @@ import pytest
 
 from flairwatch.errors import InputRejected, StageFailed
 from flairwatch.inbox import Known, Step, plan, signature
-from flairwatch.ledger import JobState
+from flairwatch.ledger import JobState, Ledger
 from flairwatch.observe import OverflowHook
 from flairwatch.records import FileRecord, Series, SeriesHeader
-from flairwatch.status import problems
+from flairwatch.status import gather, problems, render
 from flairwatch.watch import Tuning, retry_delay
 from flairwatch.workers import classify
 from tests.daemon_fixtures import (
@@ -30,7 +30,6 @@ from tests.daemon_fixtures import (
     copy_in,
     half_built,
     jobs,
-    run_once,
     stage_series,
     start_daemon,
     stop,
@@ -79,7 +78,7 @@ def test_first_signal_finishes_the_running_series(
 def test_second_signal_stops_at_once_and_restart_completes(
     tmp_path: Path, tiny_model_manifest: Path
 ) -> None:
-    cfg = write_config(tmp_path, tiny_model_manifest, settle=0.5)
+    cfg = write_config(tmp_path, tiny_model_manifest, settle=0.5, rescan=600)
     copy_in(stage_series(tmp_path / "staging", "a", SLOW), tmp_path / "inbox", "a")
     log = tmp_path / "daemon.log"
     proc = start_daemon(cfg, log)
@@ -90,11 +89,21 @@ def test_second_signal_stops_at_once_and_restart_completes(
     assert proc.wait(10) == 130
     assert [st for _, st, *_ in jobs(tmp_path / "state")] == ["running"]
     assert complete_results(tmp_path / "results") == []
-    # the next start puts the job back in the queue and finishes it, once
-    assert run_once(cfg, tmp_path / "once.log") == 0
-    assert [st for _, st, *_ in jobs(tmp_path / "state")] == ["done"]
-    assert len(complete_results(tmp_path / "results")) == 1
+    # a series arrives while the daemon is down: no event will ever report it, and the
+    # periodic rescan is far away, so only the start-up scan can find it
+    late = stage_series(tmp_path / "staging", "b")
+    copy_in(late, tmp_path / "inbox", "b")
+    proc = start_daemon(cfg, log)
+    try:
+        # the interrupted job is queued again and finished once; the new series is found
+        wait_for(
+            lambda: [st for _, st, *_ in jobs(tmp_path / "state")] == ["done", "done"], 40, "done"
+        )
+    finally:
+        assert stop(proc) == 0
+    assert len(complete_results(tmp_path / "results")) == 2
     assert half_built(tmp_path / "results") == []
+    assert "were running when the daemon stopped; queued again" in log.read_text()
 
 
 def test_interrupted_one_shot_exits_130(tmp_path: Path, tiny_model_manifest: Path) -> None:
@@ -119,12 +128,11 @@ def test_status_backup_and_single_daemon_while_running(
             watch_command(cfg), cwd=REPO, capture_output=True, text=True, timeout=60, check=False
         )
         assert second.returncode == 2 and "already uses state folder" in second.stderr
-        status = _cli("status", "--config", str(cfg))
+        status = _cli("status", "--state", str(tmp_path / "state"), "--json")
         assert status.returncode == 0, status.stdout
-        assert "done 1" in status.stdout and "health: OK" in status.stdout
-        report = json.loads(_cli("status", "--state", str(tmp_path / "state"), "--json").stdout)
+        report = json.loads(status.stdout)
         assert report["counts"] == {"done": 1} and report["healthy"] is True
-        assert report["done_last_hour"] == 1
+        assert report["done_last_hour"] == 1 and report["daemon"]["state"] == "running"
         backup = _cli("backup", "--config", str(cfg), "--to", str(tmp_path / "copy.sqlite3"))
         assert backup.returncode == 0, backup.stderr
     finally:
@@ -239,3 +247,23 @@ def test_health_rules() -> None:
     failing = ("failed", "failed", "failed", "done")
     assert "last 3 series failed" in _health(beat, 1010.0, outcomes=failing)[0]
     assert _health(beat, 1010.0, outcomes=("failed", "rejected", "failed")) == []
+
+
+def test_status_report_from_a_real_ledger(tmp_path: Path) -> None:
+    with Ledger.open(tmp_path) as led:
+        for uid, outcome in (("9.1", "done"), ("9.2", "rejected")):
+            _, job = led.new_revision("1.2", uid, lambda r, u=uid: ("s", "t", f"e{u}"), 100.0)
+            led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 101.0)
+            assert led.claim_next(102.0, "m", "1", 7) is not None
+            if outcome == "done":
+                summary = {"model": {"name": "m", "version": "1"}}
+                led.finish_done(job.id, "/r", summary, adopted=False, seconds=4.0, now=110.0)
+            else:
+                led.move_job(job.id, [JobState.RUNNING], JobState.REJECTED, 111.0, error="gap")
+        led.beat(42, "running", 115.0, inbox="/in", started=90.0)
+        report = gather(led, 120.0)
+    assert report.healthy and report.counts == {"done": 1, "rejected": 1}
+    assert (report.done_last_hour, report.mean_seconds) == (1, 4.0)
+    text = render(report)
+    assert "done 1" in text and "rejected 1" in text and "health: OK" in text
+    assert "series e9.2 r1: gap" in text
