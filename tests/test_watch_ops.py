@@ -10,6 +10,7 @@ import signal
 import sqlite3
 import subprocess
 import sys
+from collections.abc import Callable
 from dataclasses import replace
 from pathlib import Path
 
@@ -249,10 +250,14 @@ def test_health_rules() -> None:
     assert _health(beat, 1010.0, outcomes=("failed", "rejected", "failed")) == []
 
 
+def _fixed_keys(series_key: str) -> Callable[[int], tuple[str, str, str]]:
+    return lambda _revision: ("s", "t", series_key)
+
+
 def test_status_report_from_a_real_ledger(tmp_path: Path) -> None:
     with Ledger.open(tmp_path) as led:
         for uid, outcome in (("9.1", "done"), ("9.2", "rejected")):
-            _, job = led.new_revision("1.2", uid, lambda r, u=uid: ("s", "t", f"e{u}"), 100.0)
+            _, job = led.new_revision("1.2", uid, _fixed_keys(f"e{uid}"), 100.0)
             led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 101.0)
             assert led.claim_next(102.0, "m", "1", 7) is not None
             if outcome == "done":
