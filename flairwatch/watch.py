@@ -158,6 +158,9 @@ class Daemon:
                 log.info("ignored %s: %s", row.path, row.reason)
         self.ledger.record_scan(changed, [p for p in scan.gone if p in known], now)
         self.last_scan = scan
+        log.debug("scan: %d files (%d read), %d series, %d unusable, %d gone",
+                  len(scan.records), scan.read, len(scan.series), len(scan.unusable),
+                  len(scan.gone))  # fmt: skip
         deadline = now + self.cfg.rescan_seconds
         for key, series in scan.series.items():
             settle_at = self._step(key, series, now)
@@ -344,6 +347,7 @@ class Daemon:
             self.cfg, self.secret, self.cfg.workers, tasks_per_worker=self.tuning.tasks_per_worker
         )
         observer = None
+        self.signals.install()  # a stop signal during start-up ends the run cleanly
         try:
             try:
                 self.model = pool.start()
@@ -354,7 +358,6 @@ class Daemon:
             if not (self.cfg.polling or self.once):
                 observer = InboxObserver(self.inbox, self.wakes.put)
                 observer.start()
-            self.signals.install()
             return self._loop(pool, observer, started)
         finally:
             if observer is not None:

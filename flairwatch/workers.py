@@ -35,6 +35,7 @@ from flairwatch.records import Series
 log = logging.getLogger(__name__)
 
 DEFAULT_TASKS_PER_WORKER = 50
+MAX_START_FAILURES = 3
 # errors worth another try later: disk full, quota, I/O error, a share gone away
 TRANSIENT_ERRNOS = frozenset(
     {errno.ENOSPC, errno.EDQUOT, errno.EIO, errno.ESTALE, errno.ETIMEDOUT, errno.EHOSTDOWN,
@@ -179,6 +180,7 @@ class WorkerPool:
         self._slots: list[Slot] = []
         self.model: dict[str, Any] = {}
         self.closing = False  # set while draining: retired or dead workers are not replaced
+        self._start_failures = 0  # workers that died before they were ready, in a row
 
     def _spawn(self, index: int) -> Slot:
         ours, theirs = self._ctx.Pipe()
@@ -242,12 +244,20 @@ class WorkerPool:
                     slot.job_id = None
                 if not slot.retiring and slot.ready:
                     log.warning("worker %d died (exit code %s)", slot.index, slot.process.exitcode)
+                if not slot.ready:
+                    self._start_failures += 1
+                    if self._start_failures >= MAX_START_FAILURES:
+                        raise StageFailed(
+                            f"workers keep dying while starting (exit code "
+                            f"{slot.process.exitcode}); check memory and the model"
+                        )
                 self._replace(slot)
         return out
 
     def _take(self, slot: Slot, report: Report) -> Report:
         if report.kind == "ready":
             slot.ready = True
+            self._start_failures = 0
             self.model = report.summary
         elif report.kind == "retiring":
             slot.retiring = True
