@@ -29,6 +29,7 @@ _COMMAND_MODULES = (
     "flairwatch.validate",
     "flairwatch.export",
     "flairwatch.qc_marks",
+    "flairwatch.reprocess",
 )
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130

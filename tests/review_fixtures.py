@@ -18,7 +18,7 @@ from flairwatch import keys
 from flairwatch.assemble import group_series
 from flairwatch.config import Config, load_config
 from flairwatch.discover import read_record
-from flairwatch.ledger import JobState, Ledger
+from flairwatch.ledger import FileRow, JobState, Ledger
 from flairwatch.pipeline import Engine, Outcome
 from flairwatch.records import Series
 from tests.series_fixtures import SeriesSpec, write_series
@@ -81,6 +81,12 @@ class Archive:
                 lambda r: (s["subject_key"], s["study_key"], keys.series_key(series.key[1], r)),
                 now,
             )
+            files = [
+                FileRow(str(f.path), f.size, f.mtime_ns, f.sop_uid, *series.key)
+                for f in series.files
+            ]
+            ledger.record_scan(files, [], now)
+            ledger.take_files(row.id, *series.key)
             ledger.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, now)
             claimed = ledger.claim_next(now, engine.model_name, engine.model_version, os.getpid())
             assert claimed is not None and claimed.series_id == row.id

@@ -1,0 +1,257 @@
+"""`flairwatch reprocess` and the change report on a real ledger and real result folders.
+
+Oracles: SimpleITK's LabelOverlapMeasuresImageFilter for Dice between old and new masks;
+nibabel + numpy for volumes; scipy.ndimage.label (26-connectivity) for lesion counts; the
+Dice definition 2|A and B| / (|A| + |B|) (WMH challenge paper, IEEE TMI 2019) for the worked
+example; Python's csv, json and xml.etree to read the outputs back.
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import io
+import json
+import os
+import subprocess
+import xml.etree.ElementTree as ET
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+import SimpleITK as sitk
+import yaml
+from scipy import ndimage
+
+from flairwatch.change_report import Limits, compare_masks, flag_reasons, svg_scatter
+from flairwatch.cli import main
+from flairwatch.ledger import JobState
+from flairwatch.reprocess import (
+    REPROCESS_PRIORITY,
+    Candidate,
+    Progress,
+    claim_rerun,
+    parse_since,
+    queue_reruns,
+    requeue_orphans,
+    version_key,
+    wants_rerun,
+)
+from tests.model_fixtures import make_tiny_model
+from tests.review_fixtures import NOW, Archive, make_archive
+
+
+def _model_v2(folder: Path) -> Path:
+    """The tiny model on a coarser grid (1.6 mm), declared as version 0.0.2: masks move."""
+    manifest = make_tiny_model(folder, grid_shape=(40, 40), spacing_mm=(1.6, 1.6))
+    raw = yaml.safe_load(manifest.read_text())
+    raw["version"] = "0.0.2"
+    manifest.write_text(yaml.safe_dump(raw))
+    return manifest
+
+
+@pytest.fixture
+def archive(tmp_path: Path, tiny_model_manifest: Path) -> Archive:
+    arc = make_archive(tmp_path / "site", tiny_model_manifest)
+    arc.add("one")
+    arc.add("two")
+    return arc
+
+
+def _mask(path: Path) -> np.ndarray:
+    return np.asarray(nib.load(path).dataobj) > 0  # type: ignore[attr-defined]
+
+
+def _digest(folder: Path) -> dict[str, str]:
+    return {p.name: hashlib.sha256(p.read_bytes()).hexdigest() for p in folder.iterdir()}
+
+
+def test_reprocess_reruns_reports_and_resumes(
+    archive: Archive, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    v2 = _model_v2(tmp_path / "v2")
+    old_dirs = [e.outcome.result_dir for e in archive.entries]
+    before = [_digest(d) for d in old_dirs]
+    cfg = str(archive.config_file)
+    assert main(["reprocess", "--config", cfg, "--model", str(v2)]) == 0
+    err = capsys.readouterr().err
+    assert "queued 2 series" in err
+    assert "reprocess 1/2" in err and "reprocess 2/2" in err  # plain lines when not a TTY
+
+    with archive.ledger() as ledger:
+        jobs = ledger.query(
+            "SELECT state, priority, model_version FROM jobs WHERE priority < 0 ORDER BY id"
+        )
+        current = ledger.query(
+            "SELECT series_id, model_version, result_path FROM results WHERE current = 1"
+        )
+    assert jobs == [("done", REPROCESS_PRIORITY, "0.0.2")] * 2
+    assert sorted(v for _, v, _ in current) == ["0.0.2", "0.0.2"]
+    for old, digest in zip(old_dirs, before, strict=True):
+        assert _digest(old) == digest, "old version folders are kept untouched"
+        assert (old.parent / "current_version.txt").read_text().strip() == "tiny-threshold-0.0.2"
+
+    assert archive.cfg.results is not None
+    (report,) = sorted((archive.cfg.results / "reports").iterdir())
+    with open(report / "changes.csv", newline="") as fh:
+        rows = {r["series_key"]: r for r in csv.DictReader(fh)}
+    assert set(rows) == {e.series_key for e in archive.entries}
+    for entry, old in zip(archive.entries, old_dirs, strict=True):
+        row = rows[entry.series_key]
+        new = Path(row["new_result_path"])
+        a, b = _mask(old / "wmh_mask.nii.gz"), _mask(new / "wmh_mask.nii.gz")
+        assert float(row["old_volume_ml"]) == pytest.approx(a.sum() * 3.0 / 1000, abs=1e-4)
+        assert float(row["new_volume_ml"]) == pytest.approx(b.sum() * 3.0 / 1000, abs=1e-4)
+        assert np.any(a != b), "the coarser model grid moves the lesion borders"
+        overlap = sitk.LabelOverlapMeasuresImageFilter()
+        overlap.Execute(
+            sitk.GetImageFromArray(a.astype(np.uint8)), sitk.GetImageFromArray(b.astype(np.uint8))
+        )
+        assert float(row["dice"]) == pytest.approx(overlap.GetDiceCoefficient(), abs=1e-4)
+        s26 = ndimage.generate_binary_structure(3, 3)
+        assert int(row["old_lesions"]) == ndimage.label(a, structure=s26)[1]
+        assert int(row["new_lesions"]) == ndimage.label(b, structure=s26)[1]
+    summary = json.loads((report / "summary.json").read_text())
+    assert summary["series"] == 2 and summary["flagged"] == sum(
+        int(r["flagged"]) for r in rows.values()
+    )
+    svg = (report / "report.html").read_text()
+    assert svg.count("<circle") == 2 and "RESEARCH USE ONLY" in svg
+
+    # running it again queues nothing: every series is current with this model
+    assert main(["reprocess", "--config", cfg, "--model", str(v2)]) == 0
+    assert "queued 0 series" in capsys.readouterr().err
+
+    # a stricter Dice limit flags both series (their Dice is about 0.9)
+    args = ["--model", str(v2), "--report-only", "--flag-dice", "0.99"]
+    assert main(["reprocess", "--config", cfg, *args]) == 0
+    assert "2 series, 2 flagged" in capsys.readouterr().err
+    newest = sorted((archive.cfg.results / "reports").iterdir())
+    assert len(newest) == 2, "a second report never overwrites the first"
+    flagged = json.loads((newest[-1] / "summary.json").read_text())["flagged_series"]
+    assert len(flagged) == 2 and all("Dice" in f["reasons"] for f in flagged)
+
+
+def test_new_arrivals_go_first_and_reruns_never_take_them(archive: Archive, tmp_path: Path) -> None:
+    with archive.ledger() as ledger:
+        added, pending = queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 10)
+        assert (added, pending) == (2, 0)
+        assert queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 11) == (0, 2)
+        row, job = ledger.new_revision(
+            "1.2.826.0.1.99", "1.2.826.0.1.99.1", lambda r: ("s1", "t1", "e1"), NOW + 12
+        )
+        ledger.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, NOW + 12)
+        # the daemon running the new model takes the arrival before any re-run
+        first = ledger.claim_next(NOW + 13, "tiny-threshold", "0.0.2", 1)
+        assert first is not None and first.id == job.id
+        ledger.move_job(job.id, [JobState.RUNNING], JobState.QUEUED, NOW + 13)
+        # the re-run runner never takes the arrival's job
+        taken = claim_rerun(ledger, "tiny-threshold", "0.0.2", os.getpid(), NOW + 14)
+        assert taken is not None and taken.priority == REPROCESS_PRIORITY
+        assert taken.series_id != row.id
+
+
+def test_orphaned_rerun_jobs_are_queued_again(archive: Archive) -> None:
+    dead = subprocess.Popen(["true"])
+    dead.wait()
+    with archive.ledger() as ledger:
+        queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 10)
+        a = claim_rerun(ledger, "tiny-threshold", "0.0.2", dead.pid, NOW + 11)
+        b = claim_rerun(ledger, "tiny-threshold", "0.0.2", os.getpid(), NOW + 11)
+        assert a is not None and b is not None
+        assert requeue_orphans(ledger, "tiny-threshold", "0.0.2", NOW + 12) == 1
+        assert ledger.job(a.id).state is JobState.QUEUED
+        assert ledger.job(b.id).state is JobState.RUNNING
+
+
+def test_since_limits_the_series_queued(archive: Archive) -> None:
+    # the fixture records series at NOW and NOW + 1
+    with archive.ledger() as ledger:
+        assert queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 5, since=NOW + 0.5) == (
+            1,
+            0,
+        )
+        (sid,) = ledger.query("SELECT series_id FROM jobs WHERE priority < 0")[0]
+    assert sid == archive.entries[1].series_id
+    assert parse_since("2026-03-15") == 1773532800.0  # 2026-03-15T00:00:00Z (from `date -d`)
+
+
+@pytest.mark.parametrize(
+    ("current", "only_outdated", "expected"),
+    [
+        ("0.0.1", False, True),
+        ("0.0.2", False, False),  # already current with the target
+        ("0.0.3", False, True),
+        ("0.0.3", True, False),  # never downgrade with --only-outdated
+        ("0.0.1", True, True),
+    ],
+)
+def test_wants_rerun(current: str, only_outdated: bool, expected: bool) -> None:
+    c = Candidate(1, "e1", "tiny-threshold", current)
+    assert wants_rerun(c, "tiny-threshold", "0.0.2", only_outdated=only_outdated) is expected
+
+
+def test_version_order_is_numeric() -> None:
+    # semantic versioning 2.0.0, item 11: numeric identifiers compare numerically
+    assert version_key("0.10.0") > version_key("0.9.1") > version_key("0.9.0")
+
+
+def test_compare_masks_worked_example() -> None:
+    old = np.zeros((10, 10, 4), bool)
+    new = np.zeros((10, 10, 4), bool)
+    old[1:3, 1:3, 1] = True  # lesion A: 4 voxels, kept in new as 2 voxels
+    old[7:9, 7:9, 2] = True  # lesion B: 4 voxels, vanished
+    new[1:3, 1, 1] = True
+    new[5, 1:4, 3] = True  # lesion C: 3 voxels, appeared
+    ch = compare_masks(old, new, (1.0, 1.0, 2.0), 26)
+    # |A and B| = 2, |A| = 8, |B| = 5 -> Dice = 4 / 13
+    assert ch.dice == pytest.approx(4 / 13)
+    assert (ch.old_lesions, ch.new_lesions, ch.lesions_appeared, ch.lesions_vanished) == (
+        2,
+        2,
+        1,
+        1,
+    )
+    assert ch.old_volume_ml == pytest.approx(8 * 2.0 / 1000)
+    assert ch.new_volume_ml == pytest.approx(5 * 2.0 / 1000)
+    assert any("Dice" in r for r in flag_reasons(ch, Limits()))
+    assert flag_reasons(ch, Limits(dice=0.0)) == []  # 0.006 mL: below the volume limits
+
+
+def test_flag_limits_table() -> None:
+    big = compare_masks(np.ones((10, 10, 10), bool), np.ones((10, 10, 10), bool), (1, 1, 1), 26)
+    assert flag_reasons(big, Limits()) == []
+    old = np.zeros((12, 12, 14), bool)
+    old[1:11, 1:11, 1:11] = True  # 1000 voxels of 8 mm^3 = 8 mL
+    new = old.copy()
+    new[1:11, 1:11, 11:13] = True  # 1200 voxels = 9.6 mL
+    grown = compare_masks(old, new, (2, 2, 2), 26)
+    reasons = flag_reasons(grown, Limits(volume_ml=1.0, percent=10.0))
+    assert len(reasons) == 2 and "+1.60 mL" in reasons[0] and "+20%" in reasons[1]
+
+
+def test_svg_scatter_is_valid_and_marks_flagged() -> None:
+    svg = svg_scatter([(1.0, 1.1, False, "a"), (2.0, 5.0, True, "b<&>")])
+    root = ET.fromstring(svg)
+    circles = root.findall("{http://www.w3.org/2000/svg}circle")
+    assert [c.get("data-flagged") for c in circles] == ["0", "1"]
+    assert float(circles[1].get("cy") or 0) < float(circles[0].get("cy") or 0)  # higher new
+
+
+def test_progress_eta_and_terminal_bar() -> None:
+    t = [0.0]
+    out = io.StringIO()
+    p = Progress(4, out, tty=False, clock=lambda: t[0])
+    t[0] = 10.0
+    p.step("e1 done")
+    t[0] = 20.0
+    p.step("e2 done")
+    assert p.eta_seconds() == pytest.approx(20.0)
+    assert out.getvalue().splitlines()[-1] == "reprocess 2/4 e2 done ETA 00:00:20"
+    bar = io.StringIO()
+    q = Progress(2, bar, tty=True, clock=lambda: t[0])
+    q.step("x")
+    q.step("y")
+    assert bar.getvalue().startswith("\r[###############---------------] 1/2 x")
+    assert bar.getvalue().endswith("\n")
