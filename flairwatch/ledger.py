@@ -490,19 +490,27 @@ class Ledger:
             return cur.rowcount == 1
 
     def claim_next(
-        self, now: float, model_name: str, model_version: str, pid: int
+        self,
+        now: float,
+        model_name: str,
+        model_version: str,
+        pid: int,
+        *,
+        min_priority: int | None = None,
     ) -> JobRow | None:
         """Take the most urgent queued job for this model whose retry time has come.
 
-        Jobs queued for another model version (a re-run after an upgrade) are left to a daemon
-        running that model. The job becomes running and its attempt is counted.
+        Jobs queued for another model version (a re-run after an upgrade) are left to whoever
+        runs that model; ``min_priority`` leaves lower-priority jobs (archive re-runs) alone.
+        The job becomes running and its attempt is counted.
         """
+        floor = -(2**62) if min_priority is None else min_priority
         with self.transaction() as db:
             row = db.execute(
-                """SELECT id FROM jobs WHERE state = ? AND not_before <= ?
+                """SELECT id FROM jobs WHERE state = ? AND not_before <= ? AND priority >= ?
                    AND (model_name IS NULL OR (model_name = ? AND model_version = ?))
                    ORDER BY priority DESC, id LIMIT 1""",
-                (JobState.QUEUED.value, now, model_name, model_version),
+                (JobState.QUEUED.value, now, floor, model_name, model_version),
             ).fetchone()
             if row is None:
                 return None
@@ -552,19 +560,24 @@ class Ledger:
                  summary.get("lesion_volume_ml"), summary.get("lesion_count"), int(adopted), now),
             )  # fmt: skip
 
-    def requeue_running(self, now: float) -> list[int]:
-        """After a crash: jobs left running go back to the queue (their attempt still counts)."""
+    def requeue_running(
+        self, now: float, alive: Callable[[int], bool] = lambda pid: False
+    ) -> list[int]:
+        """After a crash: running jobs whose worker is gone go back to the queue.
+
+        ``alive(pid)`` tells whether a recorded worker still runs (another process, such as an
+        archive re-run, may hold jobs too). The attempt already made still counts.
+        """
         with self.transaction() as db:
-            ids = [
-                r[0]
-                for r in db.execute(
-                    "SELECT id FROM jobs WHERE state = ?", (JobState.RUNNING.value,)
-                ).fetchall()
-            ]
-            db.execute(
-                "UPDATE jobs SET state=?, not_before=?, worker_pid=NULL WHERE state=?",
-                (JobState.QUEUED.value, now, JobState.RUNNING.value),
-            )
+            rows = db.execute(
+                "SELECT id, worker_pid FROM jobs WHERE state = ?", (JobState.RUNNING.value,)
+            ).fetchall()
+            ids = [job for job, pid in rows if pid is None or not alive(pid)]
+            for job in ids:
+                db.execute(
+                    "UPDATE jobs SET state=?, not_before=?, worker_pid=NULL WHERE id=?",
+                    (JobState.QUEUED.value, now, job),
+                )
         return ids
 
     # ---- QC and corrections (used by the review commands) -------------------------------

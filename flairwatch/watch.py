@@ -95,6 +95,17 @@ def exclusive(state: Path) -> Iterator[None]:
         os.close(fd)
 
 
+def _process_alive(pid: int) -> bool:
+    """Whether a process with this id runs on this machine (ours or not)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
 def _unchanged(row: FileRow | None) -> FileRow | None:
     """A ledger row as a scan would produce it (a scan does not know revisions)."""
     return None if row is None else replace(row, series_id=None)
@@ -226,7 +237,11 @@ class Daemon:
     def dispatch(self, pool: WorkerPool, now: float) -> None:
         for slot in pool.idle():
             job = self.ledger.claim_next(
-                now, self.model["name"], self.model["version"], slot.process.pid or 0
+                now,
+                self.model["name"],
+                self.model["version"],
+                slot.process.pid or 0,
+                min_priority=0,  # archive re-runs (negative priority) belong to 'reprocess'
             )
             if job is None:
                 return
@@ -340,7 +355,7 @@ class Daemon:
         """Run until stopped (or, with ``once``, until the inbox's series are handled)."""
         started = self.clock()
         results.remove_incomplete(self.results)  # logs each folder it removes
-        again = self.ledger.requeue_running(started)
+        again = self.ledger.requeue_running(started, alive=_process_alive)
         if again:
             log.warning("%d series were running when the daemon stopped; queued again", len(again))
         pool = WorkerPool(

@@ -63,7 +63,7 @@ def _add_series(led: Ledger, uid: str, n: int, now: float) -> int:
         FileRow(f"/in/{uid}/{i}.dcm", 1000 + i, 10**9, f"{uid}.{i}", "1.2.3", uid) for i in range(n)
     ]
     led.record_scan(files, [], now)
-    srow, job = led.new_revision("1.2.3", uid, ("s1", "t1", "e1"), now)
+    srow, job = led.new_revision("1.2.3", uid, lambda r: ("s1", "t1", f"e1-r{r}"), now)
     assert led.take_files(srow.id, "1.2.3", uid) == n
     assert led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, now)
     return job.id
@@ -77,7 +77,7 @@ def test_revision_keeps_old_files_and_takes_late_ones(tmp_path: Path) -> None:
         led.record_scan([late], [], 200.0)
         # the late instance is present but not yet in any revision
         assert "9.1.9" not in led.known_sops("1.2.3", "9.1")
-        s2, job2 = led.new_revision("1.2.3", "9.1", ("s1", "t1", "e1-r2"), 201.0)
+        s2, job2 = led.new_revision("1.2.3", "9.1", lambda r: ("s1", "t1", f"e1-r{r}"), 201.0)
         assert s2.revision == 2 and job2.state is JobState.SETTLING
         assert led.take_files(s2.id, "1.2.3", "9.1") == 1
         assert len(led.revision_files(s2.id)) == 4
@@ -95,14 +95,15 @@ def test_claim_order_state_guard_and_current_result(tmp_path: Path) -> None:
         high = _add_series(led, "9.2", 2, 2.0)
         led.move_job(high, [JobState.QUEUED], JobState.QUEUED, 2.0, priority=5)
         led.move_job(low, [JobState.QUEUED], JobState.QUEUED, 2.0, not_before=50.0)
-        first = led.claim_next(10.0, "m", "1.0.0", 123)
+        assert led.claim_next(10.0, "m", "1.0.0", 123, min_priority=6) is None
+        first = led.claim_next(10.0, "m", "1.0.0", 123, min_priority=0)
         assert first is not None and first.id == high and first.state is JobState.RUNNING
         assert led.claim_next(10.0, "m", "1.0.0", 123) is None  # low waits for its retry time
         assert not led.move_job(high, [JobState.QUEUED], JobState.DONE, 11.0)
         summary = {"model": {"name": "m", "version": "1.0.0"}, "lesion_volume_ml": 1.5}
         led.finish_done(high, "/r/a", summary, adopted=False, seconds=3.0, now=12.0)
         # a later revision's result becomes the current one
-        _, job2 = led.new_revision("1.2.3", "9.2", ("s", "t", "e-r2"), 13.0)
+        _, job2 = led.new_revision("1.2.3", "9.2", lambda r: ("s", "t", f"e-r{r}"), 13.0)
         led.move_job(job2.id, [JobState.SETTLING], JobState.QUEUED, 13.0)
         assert led.claim_next(14.0, "m", "1.0.0", 1) is not None
         led.finish_done(job2.id, "/r/b", summary, adopted=True, seconds=1.0, now=15.0)
@@ -117,7 +118,9 @@ def test_requeue_running_after_crash(tmp_path: Path) -> None:
         job = _add_series(led, "9.1", 1, 1.0)
         led.claim_next(2.0, "m", "1", 99)
     with Ledger.open(tmp_path) as led:  # a new daemon after kill -9
-        assert led.requeue_running(3.0) == [job]
+        # a job whose worker still runs (another process) is left alone
+        assert led.requeue_running(3.0, alive=lambda pid: pid == 99) == []
+        assert led.requeue_running(3.0, alive=lambda pid: False) == [job]
         again = led.claim_next(3.0, "m", "1", 100)
         assert again is not None and again.attempts == 2
 
