@@ -110,6 +110,20 @@ GROUP_HEADER = (
 )
 
 
+CASE_TABLE_LIMIT = 200
+CASE_HEADER = (
+    "case",
+    "acquisition",
+    "load bin",
+    "reference (mL)",
+    "segmented (mL)",
+    "Dice",
+    "HD95 (mm)",
+    "lesions >= 30 mm^3 found",
+    "intracranial Dice",
+)
+
+
 def _fmt(value: Any, digits: int = 3) -> object:
     if value is None or (isinstance(value, float) and math.isnan(value)):
         return None
@@ -136,9 +150,15 @@ def group_rows(groups: Mapping[str, Mapping[str, Any]]) -> list[list[object]]:
     ]
 
 
-def report_markdown(document: Mapping[str, Any], failures: Sequence[CaseFailure]) -> str:
-    """The short Markdown report: caution, settings, tables by load bin and acquisition, plots."""
+def report_markdown(
+    document: Mapping[str, Any],
+    failures: Sequence[CaseFailure],
+    results: Sequence[CaseResult] = (),
+) -> str:
+    """The short Markdown report: caution, settings, tables by load bin and acquisition, plots.
 
+    Up to ``CASE_TABLE_LIMIT`` cases are listed one per row (the CSV always has them all).
+    """
     model = document["model"]
     lines = [
         f"# Validation of {model['name']} {model['version']}",
@@ -172,6 +192,30 @@ def report_markdown(document: Mapping[str, Any], failures: Sequence[CaseFailure]
         f"Per-case figures: [{CASES_CSV}]({CASES_CSV}); all figures: [{SUMMARY_JSON}]({SUMMARY_JSON}).",
         "",
     ]
+    if results:
+        shown = results[:CASE_TABLE_LIMIT]
+        lines += ["## Cases", ""]
+        if len(results) > len(shown):
+            lines += [f"The first {len(shown)} of {len(results)} cases; see {CASES_CSV}.", ""]
+        lines.append(
+            markdown_table(
+                CASE_HEADER,
+                [
+                    [
+                        r.case_id,
+                        r.acquisition,
+                        r.scores.load_bin,
+                        _fmt(r.scores.reference_ml, 2),
+                        _fmt(r.scores.segmentation_ml, 2),
+                        _fmt(r.scores.dice),
+                        _fmt(r.scores.hd95_mm, 1),
+                        f"{r.large_detected_lesions}/{r.large_reference_lesions}",
+                        _fmt(r.intracranial_dice),
+                    ]
+                    for r in shown
+                ],
+            )
+        )
     if failures:
         lines += ["## Cases that could not be scored", ""]
         lines += [f"- `{f.case_id}`: {f.message}" for f in failures]
@@ -220,7 +264,7 @@ def write_report_files(
         strip_by_group(groups, title="Dice per case by reference lesion load (mL)", y_label="Dice"),
         folder / DICE_LOAD_PNG,
     )
-    (folder / REPORT_MD).write_text(report_markdown(document, failures), encoding="utf-8")
+    (folder / REPORT_MD).write_text(report_markdown(document, failures, results), encoding="utf-8")
     # summary last: its presence marks a complete folder
     (folder / SUMMARY_JSON).write_text(
         json.dumps(json_safe(dict(document)), indent=2, sort_keys=True) + "\n", encoding="utf-8"

@@ -157,6 +157,7 @@ def test_validate_scores_cases_and_writes_report(
 
     report = (out / "report.md").read_text()
     assert "RESEARCH USE ONLY" in report and "| <1 | 4 |" in report
+    assert "| b-shifted | – | <1 | 0.26 | 0.26 | 0.721 | 1.0 | 2/2 | – |" in report
     for png in ("dice_vs_volume.png", "dice_by_load_bin.png"):
         with Image.open(out / png) as img:
             assert img.format == "PNG" and img.size[0] > 300
