@@ -11,6 +11,7 @@ import csv
 import json
 import shutil
 from pathlib import Path
+from typing import Any
 
 import nibabel as nib
 import numpy as np
@@ -18,9 +19,11 @@ import pytest
 from PIL import Image
 from scipy import ndimage
 
+from flairwatch import metrics
 from flairwatch.cli import main
 from flairwatch.errors import InputRejected
 from flairwatch.validate import case_facts, read_case
+from flairwatch.volume import Volume
 from tests.series_fixtures import SeriesSpec, phantom_array, write_series
 
 SPEC = SeriesSpec()
@@ -229,3 +232,42 @@ def test_case_facts_found_at_any_depth() -> None:
         3.0,
     )
     assert case_facts({"note": "no facts"}) == (None, None)
+
+
+# ---------------------------------------------------------------- the quality benchmark's pieces
+
+
+def _bench() -> object:
+    import importlib.util
+
+    path = Path(__file__).resolve().parent.parent / "scripts" / "bench_quality.py"
+    spec = importlib.util.spec_from_file_location("bench_quality", path)
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_bench_strata_cover_every_bin_acquisition_and_field() -> None:
+    bench: Any = _bench()
+    strata = {bench.stratum(n) for n in range(36)}
+    # issue 3 item 6: both acquisition types, both field strengths, all load bins
+    assert {s[0] for s in strata} == set(metrics.LOAD_BIN_NAMES)
+    assert strata == {
+        (b, k, f) for b in metrics.LOAD_BIN_NAMES for k in bench.KINDS for f in bench.FIELDS_T
+    }
+
+
+def test_bench_baseline_marks_voxels_above_k_times_brain_median() -> None:
+    bench: Any = _bench()
+    data = phantom_array(SPEC).astype(np.float32)
+    head = data > 0
+    volume = Volume(data, np.diag([1.0, 1.0, 3.0, 1.0]))
+    # worked by hand: the brain median is the tissue level 300 (blobs are 86 of the head's
+    # voxels), so blobs sit at 2.0 x the median: above k = 1.5, below k = 2.5
+    mask = bench.baseline_mask(volume, head, 1.5, min_lesion_mm3=10.0, connectivity=26)
+    assert np.array_equal(mask.astype(bool), data == 600)
+    assert not bench.baseline_mask(volume, head, 2.5, min_lesion_mm3=10.0, connectivity=26).any()
+    # the minimum size rule: blob 2 is 45 mm^3, dropped when the minimum is 50 mm^3
+    small = bench.baseline_mask(volume, head, 1.5, min_lesion_mm3=50.0, connectivity=26)
+    assert small.sum() == BLOB1_VOXELS
