@@ -15,6 +15,7 @@ import json
 import os
 import subprocess
 import xml.etree.ElementTree as ET
+from collections.abc import Iterator
 from pathlib import Path
 
 import nibabel as nib
@@ -26,7 +27,7 @@ from scipy import ndimage
 
 from flairwatch.change_report import Limits, compare_masks, flag_reasons, svg_scatter
 from flairwatch.cli import main
-from flairwatch.ledger import JobState
+from flairwatch.ledger import JobState, Ledger
 from flairwatch.reprocess import (
     REPROCESS_PRIORITY,
     Candidate,
@@ -57,6 +58,24 @@ def archive(tmp_path: Path, tiny_model_manifest: Path) -> Archive:
     arc.add("one")
     arc.add("two")
     return arc
+
+
+@pytest.fixture
+def ledger_only(tmp_path: Path) -> Iterator[Ledger]:
+    """A real ledger with two done series of model 0.0.1 (no result folders: queueing only)."""
+    with Ledger.open(tmp_path / "state", check_fs=False) as ledger:
+        for n in range(2):
+            now = NOW + n
+            _row, job = ledger.new_revision(
+                "1.2.826.0.1.7", f"1.2.826.0.1.7.{n}", lambda r, n=n: ("s1", "t1", f"e{n}"), now
+            )
+            ledger.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, now)
+            claimed = ledger.claim_next(now, "tiny-threshold", "0.0.1", os.getpid())
+            assert claimed is not None
+            summary = {"model": {"name": "tiny-threshold", "version": "0.0.1"}}
+            ledger.finish_done(claimed.id, f"/nowhere/e{n}", summary, adopted=False,
+                               seconds=1.0, now=now)  # fmt: skip
+        yield ledger
 
 
 def _mask(path: Path) -> np.ndarray:
@@ -133,47 +152,43 @@ def test_reprocess_reruns_reports_and_resumes(
     assert len(flagged) == 2 and all("Dice" in f["reasons"] for f in flagged)
 
 
-def test_new_arrivals_go_first_and_reruns_never_take_them(archive: Archive, tmp_path: Path) -> None:
-    with archive.ledger() as ledger:
-        added, pending = queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 10)
-        assert (added, pending) == (2, 0)
-        assert queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 11) == (0, 2)
-        row, job = ledger.new_revision(
-            "1.2.826.0.1.99", "1.2.826.0.1.99.1", lambda r: ("s1", "t1", "e1"), NOW + 12
-        )
-        ledger.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, NOW + 12)
-        # the daemon running the new model takes the arrival before any re-run
-        first = ledger.claim_next(NOW + 13, "tiny-threshold", "0.0.2", 1)
-        assert first is not None and first.id == job.id
-        ledger.move_job(job.id, [JobState.RUNNING], JobState.QUEUED, NOW + 13)
-        # the re-run runner never takes the arrival's job
-        taken = claim_rerun(ledger, "tiny-threshold", "0.0.2", os.getpid(), NOW + 14)
-        assert taken is not None and taken.priority == REPROCESS_PRIORITY
-        assert taken.series_id != row.id
+def test_new_arrivals_go_first_and_reruns_never_take_them(ledger_only: Ledger) -> None:
+    ledger = ledger_only
+    assert queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 10) == (2, 0)
+    assert queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 11) == (0, 2), "resumable"
+    row, job = ledger.new_revision(
+        "1.2.826.0.1.99", "1.2.826.0.1.99.1", lambda r: ("s2", "t2", "e9"), NOW + 12
+    )
+    ledger.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, NOW + 12)
+    # the daemon running the new model takes the arrival before any re-run
+    first = ledger.claim_next(NOW + 13, "tiny-threshold", "0.0.2", 1)
+    assert first is not None and first.id == job.id
+    ledger.move_job(job.id, [JobState.RUNNING], JobState.QUEUED, NOW + 13)
+    # the re-run runner never takes the arrival's job
+    taken = claim_rerun(ledger, "tiny-threshold", "0.0.2", os.getpid(), NOW + 14)
+    assert taken is not None and taken.priority == REPROCESS_PRIORITY
+    assert taken.series_id != row.id
 
 
-def test_orphaned_rerun_jobs_are_queued_again(archive: Archive) -> None:
+def test_orphaned_rerun_jobs_are_queued_again(ledger_only: Ledger) -> None:
     dead = subprocess.Popen(["true"])
     dead.wait()
-    with archive.ledger() as ledger:
-        queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 10)
-        a = claim_rerun(ledger, "tiny-threshold", "0.0.2", dead.pid, NOW + 11)
-        b = claim_rerun(ledger, "tiny-threshold", "0.0.2", os.getpid(), NOW + 11)
-        assert a is not None and b is not None
-        assert requeue_orphans(ledger, "tiny-threshold", "0.0.2", NOW + 12) == 1
-        assert ledger.job(a.id).state is JobState.QUEUED
-        assert ledger.job(b.id).state is JobState.RUNNING
+    ledger = ledger_only
+    queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 10)
+    a = claim_rerun(ledger, "tiny-threshold", "0.0.2", dead.pid, NOW + 11)
+    b = claim_rerun(ledger, "tiny-threshold", "0.0.2", os.getpid(), NOW + 11)
+    assert a is not None and b is not None
+    assert requeue_orphans(ledger, "tiny-threshold", "0.0.2", NOW + 12) == 1
+    assert ledger.job(a.id).state is JobState.QUEUED
+    assert ledger.job(b.id).state is JobState.RUNNING
 
 
-def test_since_limits_the_series_queued(archive: Archive) -> None:
-    # the fixture records series at NOW and NOW + 1
-    with archive.ledger() as ledger:
-        assert queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 5, since=NOW + 0.5) == (
-            1,
-            0,
-        )
-        (sid,) = ledger.query("SELECT series_id FROM jobs WHERE priority < 0")[0]
-    assert sid == archive.entries[1].series_id
+def test_since_limits_the_series_queued(ledger_only: Ledger) -> None:
+    # the fixture records its series at NOW and NOW + 1
+    ledger = ledger_only
+    assert queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 5, since=NOW + 0.5) == (1, 0)
+    (sid,) = ledger.query("SELECT series_id FROM jobs WHERE priority < 0")[0]
+    assert ledger.series(sid).series_key == "e1"
     assert parse_since("2026-03-15") == 1773532800.0  # 2026-03-15T00:00:00Z (from `date -d`)
 
 
