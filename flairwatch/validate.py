@@ -179,10 +179,10 @@ def read_reference(path: Path, image: Volume) -> np.ndarray:
 
 def read_case(case_dir: Path) -> CaseInput:
     """Read one case folder (layout in the module docstring)."""
-    image = read_case_image(case_dir)
     ref_path = case_dir / REFERENCE_FILE
     if not ref_path.is_file():
         raise InputRejected(f"no {REFERENCE_FILE}; add the reference mask on the image grid")
+    image = read_case_image(case_dir)
     reference = read_reference(ref_path, image)
     icv_path = case_dir / INTRACRANIAL_FILE
     intracranial = None

@@ -171,8 +171,7 @@ def test_validate_scores_cases_and_writes_report(
 def test_broken_case_exits_1_others_scored(
     cases: Path, tmp_path: Path, tiny_model_manifest: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    two = cases / "e-two-series"
-    write_series(two / "image", SPEC)
+    two = dicom_case(cases, "e-two-series", blob_labels() > 0)
     write_series(two / "image" / "more", SPEC)
     (cases / "f-no-reference" / "image").mkdir(parents=True)
     write_series(cases / "f-no-reference" / "image", SPEC)
