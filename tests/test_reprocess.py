@@ -66,9 +66,12 @@ def ledger_only(tmp_path: Path) -> Iterator[Ledger]:
     with Ledger.open(tmp_path / "state", check_fs=False) as ledger:
         for n in range(2):
             now = NOW + n
-            _row, job = ledger.new_revision(
-                "1.2.826.0.1.7", f"1.2.826.0.1.7.{n}", lambda r, n=n: ("s1", "t1", f"e{n}"), now
-            )
+            key = ("s1", "t1", f"e{n}")
+
+            def keys(revision: int, key: tuple[str, str, str] = key) -> tuple[str, str, str]:
+                return key
+
+            _row, job = ledger.new_revision("1.2.826.0.1.7", f"1.2.826.0.1.7.{n}", keys, now)
             ledger.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, now)
             claimed = ledger.claim_next(now, "tiny-threshold", "0.0.1", os.getpid())
             assert claimed is not None
