@@ -64,7 +64,7 @@ class Tuning:
     """Daemon timings that are not config keys (tests shorten them)."""
 
     heartbeat_seconds: float = 5.0
-    supervise_seconds: float = 5.0
+    supervise_seconds: float = 2.0  # watcher health check (cheap: a stat and thread checks)
     event_delay_seconds: float = 0.5  # gather a burst of events into one scan
     max_attempts: int = 5
     retry_base_seconds: float = 30.0
