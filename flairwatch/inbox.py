@@ -118,7 +118,8 @@ def signature(series: Series) -> str:
 class Step(StrEnum):
     """What the daemon does with one series after a scan."""
 
-    NEW_REVISION = "new_revision"  # first sight, or a new instance after a finished revision
+    NEW_REVISION = "new_revision"  # first sight, a new instance after a finished revision,
+    # or a refused revision whose files changed
     CHANGED = "changed"  # still arriving: restart the settle clock
     WAIT = "wait"  # unchanged but not yet for settle_seconds
     SETTLED = "settled"  # ready: select it and queue it (or skip it)
@@ -160,6 +161,11 @@ def plan(series: Series, known: Known | None, now: float, settle_seconds: float)
     if known.job_state in TERMINAL_STATES:
         late = {f.sop_uid for f in series.files} - known.sops_taken
         if late:
+            return Step.NEW_REVISION
+        # a refused series whose files were re-sent or removed is worth another look; a done
+        # one is not re-run for a re-sent copy of the same instances
+        refused = known.job_state in (JobState.REJECTED, JobState.FAILED)
+        if refused and signature(series) != known.signature:
             return Step.NEW_REVISION
     # queued or running: a late instance waits until that job ends, then makes a new revision
     return Step.NOTHING

@@ -167,7 +167,8 @@ class Daemon:
         for row in changed:
             if row.reason and row.path not in known:
                 log.info("ignored %s: %s", row.path, row.reason)
-        self.ledger.record_scan(changed, [p for p in scan.gone if p in known], now)
+        # gone = known to the ledger and not found now (also files removed while we were down)
+        self.ledger.record_scan(changed, [p for p in known if p not in scan.records], now)
         self.last_scan = scan
         log.debug("scan: %d files (%d read), %d series, %d unusable, %d gone",
                   len(scan.records), scan.read, len(scan.series), len(scan.unusable),

@@ -169,6 +169,11 @@ def test_settle_steps() -> None:
     done = Known(JobState.DONE, sig, 100.0, frozenset({"a", "b"}))
     assert plan(s, done, 999.0, 30) is Step.NOTHING
     assert plan(_series(("a", 10), ("b", 10), ("c", 10)), done, 999.0, 30) is Step.NEW_REVISION
+    # a re-sent copy with another size: ignored once done, a new look once refused
+    resent = _series(("a", 10), ("b", 12))
+    assert plan(resent, done, 999.0, 30) is Step.NOTHING
+    assert plan(resent, replace(done, job_state=JobState.REJECTED), 999.0, 30) is Step.NEW_REVISION
+    assert plan(s, replace(done, job_state=JobState.REJECTED), 999.0, 30) is Step.NOTHING
     running = replace(done, job_state=JobState.RUNNING, sops_taken=frozenset())
     assert plan(_series(("a", 10), ("c", 10)), running, 999.0, 30) is Step.NOTHING
 
