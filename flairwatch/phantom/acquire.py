@@ -95,6 +95,17 @@ class Sampler:
     centers: tuple[npt.NDArray[np.float64], ...]
     widths: tuple[float, float, float]
 
+    def coarsened(self, step_uv: int, step_w: int) -> Sampler:
+        """The same mapping read on a grid with every ``step``-th point (u, v and w)."""
+        scale = np.diag([float(step_uv), float(step_uv), float(step_w), 1.0])
+        steps = (step_uv, step_uv, step_w)
+        return Sampler(
+            self.matrix @ scale,
+            self.coef,
+            tuple(c / st for c, st in zip(self.centers, steps, strict=True)),
+            (self.widths[0] / step_uv, self.widths[1] / step_uv, self.widths[2] / step_w),
+        )
+
     def _basis(self, axis: int, x: npt.NDArray[np.float64]) -> npt.NDArray[np.float64]:
         d = (x[:, None] - self.centers[axis][None, :]) / self.widths[axis]
         return np.exp(-0.5 * d * d)

@@ -35,7 +35,8 @@ TEMPLATE_FILES = {
 }
 HEAD_MARGIN_MM = 24.0  # room outside the intracranial space for skull (<= 9 mm) and scalp
 SUBARACHNOID_MM = 2.0  # CSF between the template's brain envelope and the inner skull table
-VENTRICLE_DEPTH_MM = 6.0  # ventricular CSF lies at least this deep inside the brain envelope
+VENTRICLE_DEPTH_MM = 6.0
+SHELL_NOISE_CELL_MM = 9.0  # grid of the smooth skull/scalp thickness variations  # ventricular CSF lies at least this deep inside the brain envelope
 
 
 @dataclass(frozen=True, eq=False)
@@ -64,6 +65,8 @@ class Template:
     icv_center_lps: tuple[float, float, float]
     shell_idx: npt.NDArray[np.intp]
     shell_depth: FloatArray
+    shell_cells: npt.NDArray[np.intp]
+    shell_coarse_shape: tuple[int, int, int]
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -172,6 +175,13 @@ def load_template(voxel_mm: int = 1) -> Template:
     icv_center = (ras_to_lps(affine_ras) @ np.append(np.argwhere(icv).mean(axis=0), 1.0))[:3]
     shell_idx = np.flatnonzero((~icv & (d_out <= HEAD_MARGIN_MM)).ravel())
     shell_depth = (d_out.ravel()[shell_idx] - 0.5 * vox).astype(np.float32)
+    # Cells of a 9 mm grid holding each shell voxel, for cheap smooth thickness variations.
+    step = max(SHELL_NOISE_CELL_MM / vox, 1.0)
+    coarse_shape = tuple(int(np.ceil(n / step)) + 1 for n in gm.shape)
+    shell_ijk = np.unravel_index(shell_idx, gm.shape)
+    shell_cells = np.ravel_multi_index(
+        tuple((np.asarray(a) / step).astype(np.intp) for a in shell_ijk), coarse_shape
+    )
     logger.info(
         "template loaded: grid %s at %.0f mm, ventricles %.1f mL",
         gm.shape,
@@ -192,6 +202,8 @@ def load_template(voxel_mm: int = 1) -> Template:
         icv_center_lps=(float(icv_center[0]), float(icv_center[1]), float(icv_center[2])),
         shell_idx=shell_idx,
         shell_depth=shell_depth,
+        shell_cells=shell_cells,
+        shell_coarse_shape=(coarse_shape[0], coarse_shape[1], coarse_shape[2]),
     )
 
 
@@ -223,17 +235,10 @@ def _layer(t: FloatArray, start: FloatArray | float, end: FloatArray | float) ->
     return np.asarray(a - b, dtype=np.float32)
 
 
-def _noise_at(tpl: Template, scale_mm: float, rng: np.random.Generator) -> FloatArray:
-    """Smooth unit-variance noise evaluated at the shell voxels only (nearest coarse cell)."""
-    step = max(scale_mm / 4.0, tpl.voxel_mm) / tpl.voxel_mm
-    coarse_shape = tuple(int(np.ceil(n / step)) + 1 for n in tpl.shape)
-    coarse = smooth_noise(coarse_shape, 4.0, rng)
-    ijk = np.unravel_index(tpl.shell_idx, tpl.shape)
-    cells = tuple(
-        np.minimum((np.asarray(a) / step).astype(np.intp), n - 1)
-        for a, n in zip(ijk, coarse_shape, strict=True)
-    )
-    return coarse[cells]
+def _noise_at(tpl: Template, rng: np.random.Generator) -> FloatArray:
+    """Smooth unit-variance noise (~36 mm features) at the shell voxels (nearest coarse cell)."""
+    coarse = smooth_noise(tpl.shell_coarse_shape, 4.0, rng)
+    return coarse.reshape(-1)[tpl.shell_cells]
 
 
 def build_subject(
@@ -270,8 +275,8 @@ def build_subject(
     vent_csf = csf * (d_vent <= 0.5)
 
     t = tpl.shell_depth
-    skull: FloatArray = skull_mm * (1.0 + 0.25 * np.clip(_noise_at(tpl, 40.0, rng), -1.5, 1.5))
-    fat: FloatArray = fat_mm * (1.0 + 0.3 * np.clip(_noise_at(tpl, 30.0, rng), -1.5, 1.5))
+    skull: FloatArray = skull_mm * (1.0 + 0.25 * np.clip(_noise_at(tpl, rng), -1.5, 1.5))
+    fat: FloatArray = fat_mm * (1.0 + 0.3 * np.clip(_noise_at(tpl, rng), -1.5, 1.5))
     table = 1.4
     bone = _layer(t, 0.0, table) + _layer(t, skull - table, skull)
     marrow = _layer(t, table, skull - table)
@@ -280,11 +285,11 @@ def build_subject(
     fat_layer = _layer(t, galea, galea + fat)
     skin = _layer(t, galea + fat, galea + fat + 1.8)
     return Subject(
-        gm=gm.astype(np.float32),
-        wm=wm.astype(np.float32),
-        csf=csf.astype(np.float32),
-        vent_csf=vent_csf.astype(np.float32),
-        d_vent=d_vent.astype(np.float32),
+        gm=gm.astype(np.float32, copy=False),
+        wm=wm.astype(np.float32, copy=False),
+        csf=csf.astype(np.float32, copy=False),
+        vent_csf=vent_csf.astype(np.float32, copy=False),
+        d_vent=d_vent.astype(np.float32, copy=False),
         bone=bone,
         marrow=marrow,
         muscle=muscle,

@@ -112,13 +112,14 @@ def make_lesions(
         + (0.25 + 0.25 * (1.0 - periventricular)) * coarse
         + 0.22 * fine
     ).astype(np.float32)
-    eligible = (wm > 0.35) & (d_vent > 1.0) & (d_ext > 2.0)
+    eligible = (wm > 0.6) & (d_vent > 1.0) & (d_ext > 2.0)
     deep = eligible & (d_vent > 8.0) & (wm > 0.7)
     n_blobs = int(rng.poisson(2.0 + 1.5 * np.sqrt(load_ml) * (1.2 - periventricular)))
     _add_blobs(score, deep, min(n_blobs, 60), vox, rng)
     score = np.where(eligible, score, -10.0).astype(np.float32)
 
-    # Threshold so that sum(fraction * wm) * voxel volume ~ target; refine a few times.
+    # Threshold so that the voxels counted as lesion (fraction of the voxel >= 0.5, the truth
+    # rule) total the target; refine a few times since the soft edge shifts the count.
     voxel_ml = vox**3 / 1000.0
     values = np.sort(score[eligible])[::-1]
     n_target = int(np.clip(load_ml / voxel_ml, 1, values.size - 1))
@@ -127,7 +128,7 @@ def make_lesions(
     volume = 0.0
     for _ in range(6):
         frac = np.clip((score - thr) / EDGE_SOFTNESS + 0.5, 0.0, 1.0).astype(np.float32)
-        volume = float((frac * wm).sum()) * voxel_ml
+        volume = float(np.count_nonzero(frac * wm >= 0.5)) * voxel_ml
         if volume <= 0 or abs(volume - load_ml) < 0.03 * load_ml:
             break
         n_target = int(np.clip(n_target * load_ml / volume, 1, values.size - 1))

@@ -84,7 +84,8 @@ class PhantomParams:
     on typical FLAIR. Look-alike strengths (``ventricle_lining``, ``inflow``,
     ``cortex_patches``) are 0 (off) .. 1 (strong). ``bias_strength`` is the standard deviation
     of the log bias field; ``noise_level`` the Gaussian sigma relative to the WM signal;
-    ``signal_scale`` the WM level in stored pixel units. ``template_mm`` 2 uses a 2 mm
+    ``signal_scale`` the WM level in stored pixel units. ``head_scale`` scales the template
+    head (about 1.45 L intracranial at 0.89); ``head_aspect`` stretches its x, y, z axes. ``template_mm`` 2 uses a 2 mm
     template (fast, for tests).
     """
 
@@ -93,6 +94,7 @@ class PhantomParams:
     atrophy: float
     head_scale: float
     head_rotation_deg: tuple[float, float, float]
+    head_aspect: tuple[float, float, float]
     deformation_mm: float
     skull_mm: float
     fat_mm: float
@@ -183,7 +185,8 @@ def sample_params(
         atrophy=round(atrophy, 3),
         head_scale=round(rng.uniform(0.84, 0.97), 3),
         head_rotation_deg=tuple(round(float(x), 2) for x in np.clip(rng.normal(0, 3, 3), -8, 8)),  # type: ignore[arg-type]
-        deformation_mm=round(rng.uniform(1.0, 3.5), 2),
+        head_aspect=tuple(round(float(x), 3) for x in rng.uniform(0.95, 1.05, 3)),  # type: ignore[arg-type]
+        deformation_mm=round(rng.uniform(1.5, 4.5), 2),
         skull_mm=round(rng.uniform(5.0, 8.5), 2),
         fat_mm=round(rng.uniform(2.5, 7.0), 2),
         periventricular=round(rng.uniform(0.2, 1.0), 3),
