@@ -101,9 +101,17 @@ def classify(exc: BaseException) -> Report:
 
 
 def worker_main(
-    cfg: Config, secret: bytes, conn: Connection, parent_pid: int, tasks: int, umask: int
+    cfg: Config,
+    secret: bytes,
+    conn: Connection,
+    parent_pid: int,
+    tasks: int,
+    umask: int,
+    log_level: int = logging.INFO,
 ) -> None:
     """Body of a worker process: build the Engine once, then process tasks until told to stop."""
+    # same one-line format as the daemon, so journald shows worker lines alike
+    logging.basicConfig(level=log_level, format="%(levelname)s %(name)s: %(message)s")
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     _die_with_parent(parent_pid)
@@ -188,7 +196,15 @@ class WorkerPool:
             os.environ.setdefault(name, str(self._cfg.threads))
         proc = self._ctx.Process(
             target=worker_main,
-            args=(self._cfg, self._secret, theirs, os.getpid(), self._tasks, self._umask),
+            args=(
+                self._cfg,
+                self._secret,
+                theirs,
+                os.getpid(),
+                self._tasks,
+                self._umask,
+                logging.getLogger().getEffectiveLevel(),
+            ),
             name=f"flairwatch-worker-{index}",
             daemon=True,
         )
