@@ -7,7 +7,8 @@
    that arrived on or after that UTC date. A series that already has a queued or running job
    for the model is not queued twice, so running the command again resumes.
 2. **Run** the queued re-run jobs one at a time in this process (``--queue-only`` leaves them
-   to a daemon running the same model). While a live daemon has new arrivals queued or running
+   to a daemon running the same model; ``--cluster`` sends them to Dask workers, see
+   :mod:`flairwatch.scaleout`). While a live daemon has new arrivals queued or running
    it waits, so a new series is never delayed by more than the one re-run job in progress.
    Jobs left running by a re-run process that died are queued again first.
 3. **Report** (:mod:`flairwatch.change_report`) the series this run finished, into
@@ -337,7 +338,38 @@ def run_reprocess(args: argparse.Namespace) -> int:
               file=sys.stderr)  # fmt: skip
         if args.queue_only:
             return EXIT_OK
+        if args.cluster:
+            return _run_cluster(ledger, cfg, args.cluster, name, version, limits)
         return _run_all(ledger, cfg, manifest, name, version, limits)
+
+
+def _run_cluster(ledger: Ledger, cfg: Config, address: str, name: str, version: str,
+                 limits: Limits) -> int:  # fmt: skip
+    try:
+        from flairwatch.scaleout import connect, run_on_cluster
+    except ImportError as exc:
+        if (exc.name or "").split(".")[0] not in ("dask", "distributed"):
+            raise
+        raise ConfigInvalid(
+            "--cluster needs Dask distributed; install the 'cluster' extra (dask[distributed])"
+        ) from None
+
+    secret = keys.load_or_create_secret(cfg.state or Path("."))
+    progress = Progress(remaining(ledger, name, version), sys.stderr,
+                        tty=sys.stderr.isatty(), clock=time.monotonic)  # fmt: skip
+    client, cluster = connect(address)
+    try:
+        finished, failures = run_on_cluster(
+            ledger, client, cfg, cfg.model, secret, name=name, version=version,
+            on_step=lambda job_id, outcome: progress.step(f"job {job_id} {outcome}"),
+        )  # fmt: skip
+    finally:
+        client.close()
+        if cluster is not None:
+            cluster.close()
+    if finished:
+        _report(ledger, cfg, finished, name, version, limits)
+    return EXIT_FAILED if failures else EXIT_OK
 
 
 def _run_all(ledger: Ledger, cfg: Config, manifest: Any, name: str, version: str,
@@ -407,6 +439,11 @@ def add_parser(subparsers: Any) -> None:
         "--queue-only", action="store_true", help="queue the jobs and leave them to the daemon"
     )
     p.add_argument("--report-only", action="store_true", help="only write the change report")
+    p.add_argument(
+        "--cluster",
+        metavar="ADDRESS",
+        help="run on a Dask scheduler at ADDRESS, or local:N for N local worker processes",
+    )
     d = Limits()
     p.add_argument("--flag-volume-ml", type=float, default=d.volume_ml,
                    help="flag a volume change above this, mL (default %(default)s)")  # fmt: skip
