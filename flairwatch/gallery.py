@@ -172,31 +172,46 @@ def render_study(
 
 
 def render_index(items: Sequence[GalleryItem], generated: float) -> str:
-    """The overview: one row per series, linked to its study page."""
+    """The overview: one row per series, linked to its study page.
+
+    It shows only what the ledger knows (plus corrected volumes), so the daemon can rewrite it
+    after every series without reading every summary.
+    """
     rows = []
     for it in items:
         link = f"study-{it.study_key}.html#{it.series_key}"
         rows.append(
             f'<tr {_attrs(it)}><td><a href="{_e(link)}">{_e(it.study_key)}</a></td>'
-            f"<td>{_e(it.series_key)}</td><td>{_e(it.description)}</td>"
-            f"<td>{_e(it.acquisition_date)}</td><td>{_e(_ml(it.lesion_volume_ml))}</td>"
+            f"<td>{_e(it.series_key)}</td><td>{_e(_ml(it.lesion_volume_ml))}</td>"
             f"<td>{_e(it.lesion_count)}</td><td>{_e(it.model)}</td>"
             f'<td class="st-{_e(it.status)}">{_e(_status_text(it))}</td></tr>'
         )
     head = (
-        "<tr><th>study</th><th>series</th><th>description</th><th>date</th>"
-        "<th>WMH volume</th><th>lesions</th><th>model</th><th>QC</th></tr>"
+        "<tr><th>study</th><th>series</th><th>WMH volume</th><th>lesions</th><th>model</th>"
+        "<th>QC</th></tr>"
     )
     body = f"<table>\n{head}\n" + "\n".join(rows) + "\n</table>"
     return _page("QC review: all series", body, generated)
 
 
-def gather_items(ledger: Ledger, *, connectivity: int = DEFAULT_CONNECTIVITY) -> list[GalleryItem]:
-    """Every reported series as a gallery item (reads summaries and corrected masks)."""
+def gather_items(
+    ledger: Ledger,
+    *,
+    connectivity: int = DEFAULT_CONNECTIVITY,
+    study_key: str | None = None,
+    summaries: bool = True,
+) -> list[GalleryItem]:
+    """Reported series as gallery items, of one study or all.
+
+    With ``summaries`` each result's summary.json is read (description, date, warnings, QC
+    image); without, only the ledger and corrected masks are.
+    """
     items = []
     for rec in reported_results(ledger):
+        if study_key is not None and rec.study_key != study_key:
+            continue
         folder = Path(rec.result_path)
-        summary = results.read_summary(folder) if results.is_complete(folder) else {}
+        summary = results.read_summary(folder) if summaries and results.is_complete(folder) else {}
         corrected = None
         if rec.correction_path:
             m = corrected_measures(Path(rec.correction_path), connectivity)
@@ -205,31 +220,29 @@ def gather_items(ledger: Ledger, *, connectivity: int = DEFAULT_CONNECTIVITY) ->
     return items
 
 
-def _write_pages(
-    items: Sequence[GalleryItem], out_dir: Path, now: float, studies: set[str] | None
-) -> list[Path]:
-    out_dir.mkdir(parents=True, exist_ok=True, mode=results.DIR_MODE)
-    written = []
-    by_study: dict[str, list[GalleryItem]] = {}
-    for it in items:
-        by_study.setdefault(it.study_key, []).append(it)
-    for study, group in sorted(by_study.items()):
-        if studies is not None and study not in studies:
-            continue
-        page = out_dir / f"study-{study}.html"
-        results.write_atomic(page, render_study(study, group, out_dir, now).encode("utf-8"))
-        written.append(page)
-    index = out_dir / INDEX_FILE
-    results.write_atomic(index, render_index(items, now).encode("utf-8"))
-    written.append(index)
-    return written
+def _write_study(out_dir: Path, study: str, items: Sequence[GalleryItem], now: float) -> Path:
+    page = out_dir / f"study-{study}.html"
+    results.write_atomic(page, render_study(study, items, out_dir, now).encode("utf-8"))
+    return page
+
+
+def _write_index(out_dir: Path, items: Sequence[GalleryItem], now: float) -> Path:
+    page = out_dir / INDEX_FILE
+    results.write_atomic(page, render_index(items, now).encode("utf-8"))
+    return page
 
 
 def write_gallery(
     ledger: Ledger, out_dir: Path, *, connectivity: int = DEFAULT_CONNECTIVITY, now: float
 ) -> list[Path]:
     """Write the index and every study page into ``out_dir``; return the pages written."""
-    return _write_pages(gather_items(ledger, connectivity=connectivity), out_dir, now, None)
+    out_dir.mkdir(parents=True, exist_ok=True, mode=results.DIR_MODE)
+    items = gather_items(ledger, connectivity=connectivity)
+    by_study: dict[str, list[GalleryItem]] = {}
+    for it in items:
+        by_study.setdefault(it.study_key, []).append(it)
+    pages = [_write_study(out_dir, study, group, now) for study, group in sorted(by_study.items())]
+    return [*pages, _write_index(out_dir, items, now)]
 
 
 def refresh_study(
@@ -242,14 +255,19 @@ def refresh_study(
 ) -> list[Path]:
     """After a series is done: rewrite its study's page and the index (for the daemon).
 
-    Failures to write are logged and swallowed: the gallery must never stop processing.
+    Reads the summaries of that study only. Failures are logged and swallowed: the gallery
+    must never stop processing.
     """
     rows = ledger.query("SELECT study_key FROM series WHERE id = ?", (series_id,))
     if not rows:
         return []
+    study = rows[0][0] or "unknown"
     try:
-        items = gather_items(ledger, connectivity=connectivity)
-        return _write_pages(items, out_dir, now, {rows[0][0] or "unknown"})
+        out_dir.mkdir(parents=True, exist_ok=True, mode=results.DIR_MODE)
+        items = gather_items(ledger, connectivity=connectivity, study_key=study)
+        page = _write_study(out_dir, study, items, now)
+        index = gather_items(ledger, connectivity=connectivity, summaries=False)
+        return [page, _write_index(out_dir, index, now)]
     except (OSError, FlairwatchError) as exc:
         log.warning("gallery %s not updated: %s", out_dir, exc)
         return []
