@@ -17,7 +17,8 @@
 
 Progress goes to stderr: a bar with ETA on a terminal, one plain line per series otherwise.
 The new result becomes current (ledger and the series folder's pointer file); older version
-folders stay where they are; a corrected mask stays the reported result.
+folders stay where they are unless ``keep_versions`` is set (:mod:`flairwatch.retention`,
+applied after the report); a corrected mask stays the reported result.
 """
 
 from __future__ import annotations
@@ -369,6 +370,7 @@ def _run_cluster(ledger: Ledger, cfg: Config, address: str, name: str, version: 
             cluster.close()
     if finished:
         _report(ledger, cfg, finished, name, version, limits)
+        _prune(ledger, cfg)
     return EXIT_FAILED if failures else EXIT_OK
 
 
@@ -397,7 +399,18 @@ def _run_all(ledger: Ledger, cfg: Config, manifest: Any, name: str, version: str
         progress.step(f"{key} {outcome}")
     if finished:
         _report(ledger, cfg, finished, name, version, limits)
+        _prune(ledger, cfg)
     return EXIT_FAILED if failures else EXIT_OK
+
+
+def _prune(ledger: Ledger, cfg: Config) -> None:
+    """After the change report (which reads the old folders): apply ``keep_versions``."""
+    from flairwatch.retention import prune_versions
+
+    removed = prune_versions(ledger, cfg.keep_versions)
+    if removed:
+        print(f"removed {len(removed)} older result folder(s) (keep_versions {cfg.keep_versions})",
+              file=sys.stderr)  # fmt: skip
 
 
 def _report(ledger: Ledger, cfg: Config, ids: Sequence[int], name: str, version: str,
