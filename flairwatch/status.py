@@ -179,7 +179,7 @@ def run_backup(args: argparse.Namespace) -> int:
     target = Path(args.to)
     if target.is_dir():
         target = target / time.strftime("ledger-%Y%m%d-%H%M%S.sqlite3")
-    with Ledger.open(_state_dir(args)) as ledger:
+    with Ledger.open_readonly(_state_dir(args)) as ledger:  # never creates an empty ledger
         ledger.backup_to(target)
     print(f"ledger copied to {target}", file=sys.stderr)
     return 0
