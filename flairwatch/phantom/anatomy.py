@@ -36,7 +36,9 @@ TEMPLATE_FILES = {
 HEAD_MARGIN_MM = 24.0  # room outside the intracranial space for skull (<= 9 mm) and scalp
 SUBARACHNOID_MM = 2.0  # CSF between the template's brain envelope and the inner skull table
 VENTRICLE_DEPTH_MM = 6.0
-SHELL_NOISE_CELL_MM = 9.0  # grid of the smooth skull/scalp thickness variations  # ventricular CSF lies at least this deep inside the brain envelope
+SHELL_NOISE_CELL_MM = 3.0  # grid of the smooth skull/scalp variations (nearest-cell lookup)
+SKULL_BASE_CLOSING_MM = 25.0  # closing radius of the envelope that the skull follows
+SKULL_BASE_DEPTH_MM = 0.7  # depth given to skull-base voxels (cortical bone: dark)
 
 
 @dataclass(frozen=True, eq=False)
@@ -166,7 +168,13 @@ def load_template(voxel_mm: int = 1) -> Template:
 
     d_brain_out = ndi.distance_transform_edt(~brain, sampling=sampling).astype(np.float32)
     icv = d_brain_out <= SUBARACHNOID_MM
-    d_out = np.maximum(d_brain_out - SUBARACHNOID_MM, 0.0).astype(np.float32)
+    # The skull follows a closed envelope of the intracranial space: between the temporal and
+    # frontal lobes and under the cut-off brainstem lies skull base (bone), not scalp.
+    dilated = d_brain_out <= SUBARACHNOID_MM + SKULL_BASE_CLOSING_MM
+    closed = ndi.distance_transform_edt(dilated, sampling=sampling) > SKULL_BASE_CLOSING_MM
+    closed |= icv
+    d_out = ndi.distance_transform_edt(~closed, sampling=sampling).astype(np.float32)
+    base = closed & ~icv
     csf = np.clip(icv.astype(np.float32) - gm - wm, 0.0, 1.0)
     d_vent = ndi.distance_transform_edt(~vent, sampling=sampling).astype(np.float32)
     ext = ((csf > 0.5) & (d_vent > 3.0)) | ~brain
@@ -174,13 +182,16 @@ def load_template(voxel_mm: int = 1) -> Template:
     center = np.argwhere(vent).mean(axis=0)
     icv_center = (ras_to_lps(affine_ras) @ np.append(np.argwhere(icv).mean(axis=0), 1.0))[:3]
     shell_idx = np.flatnonzero((~icv & (d_out <= HEAD_MARGIN_MM)).ravel())
-    shell_depth = (d_out.ravel()[shell_idx] - 0.5 * vox).astype(np.float32)
+    # Skull-base voxels get a depth in the middle of the skull (diploe and bone).
+    depth = np.where(base, SKULL_BASE_DEPTH_MM, d_out - 0.5 * vox)
+    shell_depth = depth.ravel()[shell_idx].astype(np.float32)
+    del depth
     # Cells of a 9 mm grid holding each shell voxel, for cheap smooth thickness variations.
-    step = max(SHELL_NOISE_CELL_MM / vox, 1.0)
-    coarse_shape = tuple(int(np.ceil(n / step)) + 1 for n in gm.shape)
+    cell = max(SHELL_NOISE_CELL_MM / vox, 1.0)
+    coarse_shape = tuple(int(np.ceil(n / cell)) + 1 for n in gm.shape)
     shell_ijk = np.unravel_index(shell_idx, gm.shape)
     shell_cells = np.ravel_multi_index(
-        tuple((np.asarray(a) / step).astype(np.intp) for a in shell_ijk), coarse_shape
+        tuple((np.asarray(a) / cell).astype(np.intp) for a in shell_ijk), coarse_shape
     )
     logger.info(
         "template loaded: grid %s at %.0f mm, ventricles %.1f mL",
@@ -235,9 +246,10 @@ def _layer(t: FloatArray, start: FloatArray | float, end: FloatArray | float) ->
     return np.asarray(a - b, dtype=np.float32)
 
 
-def _noise_at(tpl: Template, rng: np.random.Generator) -> FloatArray:
-    """Smooth unit-variance noise (~36 mm features) at the shell voxels (nearest coarse cell)."""
-    coarse = smooth_noise(tpl.shell_coarse_shape, 4.0, rng)
+def _noise_at(tpl: Template, rng: np.random.Generator, cells: float = 4.0) -> FloatArray:
+    """Smooth unit-variance noise at the shell voxels (nearest cell of a 3 mm grid); features
+    about ``cells`` cells wide."""
+    coarse = smooth_noise(tpl.shell_coarse_shape, cells, rng)
     return coarse.reshape(-1)[tpl.shell_cells]
 
 
@@ -275,11 +287,15 @@ def build_subject(
     vent_csf = csf * (d_vent <= 0.5)
 
     t = tpl.shell_depth
-    skull: FloatArray = skull_mm * (1.0 + 0.25 * np.clip(_noise_at(tpl, rng), -1.5, 1.5))
-    fat: FloatArray = fat_mm * (1.0 + 0.3 * np.clip(_noise_at(tpl, rng), -1.5, 1.5))
-    table = 1.4
-    bone = _layer(t, 0.0, table) + _layer(t, skull - table, skull)
-    marrow = _layer(t, table, skull - table)
+    skull: FloatArray = skull_mm * (1.0 + 0.25 * np.clip(_noise_at(tpl, rng, 12.0), -1.5, 1.5))
+    fat: FloatArray = fat_mm * (1.0 + 0.3 * np.clip(_noise_at(tpl, rng, 10.0), -1.5, 1.5))
+    # Cortical tables 1-2 mm; the diploe between them is patchy (fatty marrow, bright on FLAIR,
+    # mixed with dark trabecular bone).
+    table = 1.5 + 0.4 * np.clip(_noise_at(tpl, rng, 5.0), -1.2, 1.2)
+    patchy = np.clip(0.6 + 0.45 * _noise_at(tpl, rng, 3.0), 0.05, 1.0)
+    diploe = _layer(t, table, skull - table)
+    marrow = diploe * patchy
+    bone = _layer(t, 0.0, table) + _layer(t, skull - table, skull) + diploe - marrow
     galea = skull + 1.5
     muscle = _layer(t, skull, galea)
     fat_layer = _layer(t, galea, galea + fat)

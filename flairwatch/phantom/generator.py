@@ -32,7 +32,7 @@ from flairwatch.volume import Volume
 Matrix = npt.NDArray[np.float64]
 # Distance (mm, template LPS z) from the intracranial centre to the centre of an axial stack:
 # stacks start at the skull base and end above the vertex.
-AXIAL_CENTER_RAISE_MM = 8.0
+AXIAL_CENTER_RAISE_MM = 3.0
 # In-plane pixel size (mm) at which template maps are sampled before upsampling: the 1 mm
 # template holds no finer detail.
 INTERMEDIATE_MM = 1.0

@@ -112,7 +112,11 @@ def make_lesions(
         + (0.25 + 0.25 * (1.0 - periventricular)) * coarse
         + 0.22 * fine
     ).astype(np.float32)
-    eligible = (wm > 0.6) & (d_vent > 1.0) & (d_ext > 2.0)
+    # Supratentorial WM only (no cerebellar/brainstem lesions): above ~30 mm below the
+    # ventricles' centre.
+    k = np.arange(box[2].start, box[2].stop, dtype=np.float32)[None, None, :]
+    supra = k > tpl.vent_center_ijk[2] - 30.0 / vox
+    eligible = (wm > 0.6) & (d_vent > 1.0) & (d_ext > 2.0) & supra
     deep = eligible & (d_vent > 8.0) & (wm > 0.7)
     n_blobs = int(rng.poisson(2.0 + 1.5 * np.sqrt(load_ml) * (1.2 - periventricular)))
     _add_blobs(score, deep, min(n_blobs, 60), vox, rng)
