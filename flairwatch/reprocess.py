@@ -397,6 +397,10 @@ def _run_all(ledger: Ledger, cfg: Config, manifest: Any, name: str, version: str
         elif outcome != "retry":
             failures += 1
         progress.step(f"{key} {outcome}")
+    left = remaining(ledger, name, version)
+    if left:
+        print(f"{left} re-run job(s) still waiting (a retry later, or another process has them);"
+              " run reprocess again to finish them", file=sys.stderr)  # fmt: skip
     if finished:
         _report(ledger, cfg, finished, name, version, limits)
         _prune(ledger, cfg)
