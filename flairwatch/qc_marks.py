@@ -87,14 +87,25 @@ def check_on_grid(candidate: Volume, reference: Volume, label: str) -> np.ndarra
 
 
 def _write_new(folder: Path, stem: str, data: bytes) -> Path:
-    """Write ``data`` atomically under a name not yet taken in ``folder``."""
+    """Write ``data`` durably under a name not yet taken in ``folder``; never overwrite.
+
+    The bytes go to a fsynced temporary file first, which is then hard-linked to the first free
+    name (a link fails on an existing name, so two reviewers at the same second cannot clash).
+    """
     folder.mkdir(parents=True, exist_ok=True, mode=results.DIR_MODE)
-    for n in range(1, 1000):
-        name = f"{stem}-{MASK_FILE}" if n == 1 else f"{stem}-{n}-{MASK_FILE}"
-        target = folder / name
-        if not target.exists():
-            results.write_atomic(target, data)
+    tmp = folder / f".{stem}-{os.getpid()}.tmp"
+    results.write_atomic(tmp, data)
+    try:
+        for n in range(1, 1000):
+            target = folder / (f"{stem}-{MASK_FILE}" if n == 1 else f"{stem}-{n}-{MASK_FILE}")
+            try:
+                os.link(tmp, target)
+            except FileExistsError:
+                continue
+            results.fsync_dir(folder)
             return target
+    finally:
+        tmp.unlink(missing_ok=True)
     raise InputRejected(f"too many corrections named {stem} in {folder}; wait a second and retry")
 
 
