@@ -76,16 +76,15 @@ from flairwatch.validate import (  # noqa: E402
 from flairwatch.volume import Volume  # noqa: E402
 
 # Load bins of metrics.LOAD_BIN_NAMES and the generator lesion loads (mL) drawn for each,
-# log-uniform. The truth mask on the acquisition grid keeps only voxels at least half lesion, so
-# it holds less than the generator's load (about 40 % of it for small loads on thick slices,
-# 70-85 % for large ones, measured on the first held-out cases); the ranges allow for that.
+# log-uniform, kept near the middle of each bin: the truth mask on the acquisition grid (voxels at
+# least half lesion) holds somewhat more or less than the generator's load.
 LOAD_RANGES_ML: tuple[tuple[str, float, float], ...] = (
     ("0", 0.0, 0.0),
-    ("<1", 0.4, 1.6),
-    ("1-5", 3.0, 8.0),
-    ("5-15", 9.0, 16.0),
-    ("15-30", 23.0, 36.0),
-    (">30", 48.0, 60.0),
+    ("<1", 0.35, 0.8),
+    ("1-5", 1.8, 3.5),
+    ("5-15", 7.0, 11.0),
+    ("15-30", 19.0, 25.0),
+    (">30", 36.0, 50.0),
 )
 KINDS = ("2d_axial", "3d_sagittal")
 FIELDS_T = (1.5, 3.0)
@@ -105,6 +104,7 @@ GATE_MARGIN = 0.10
 GATE_LOAD_ML = 1.0
 
 WORK = REPO / "work"
+FINGERPRINT_FILE = "generator-source.sha256"
 
 
 # ------------------------------------------------------------------------- held-out phantoms
@@ -144,20 +144,58 @@ def quick_params(seed: int) -> PhantomParams:
     return dataclasses.replace(held_out_params(seed), template_mm=2)
 
 
-def build_held_out(folder: Path, n: int, *, quick: bool, workers: int) -> list[Path]:
-    """Generate (or find) the first ``n`` held-out cases under ``folder``."""
+def generator_fingerprint() -> str:
+    """SHA-256 over the phantom generator's source files: any edit makes new cases."""
+    import hashlib
+
+    import flairwatch.phantom
+
+    digest = hashlib.sha256()
+    for path in sorted(Path(flairwatch.phantom.__file__).parent.glob("*.py")):
+        digest.update(path.name.encode() + b"\0" + path.read_bytes())
+    return digest.hexdigest()
+
+
+def build_held_out(
+    folder: Path, n: int, *, quick: bool, workers: int, keep: bool = False
+) -> list[Path]:
+    """Generate (or find) the first ``n`` held-out cases under ``folder``.
+
+    The folder records the generator source it was made with (:func:`generator_fingerprint`);
+    when the source has changed since, the cases are rebuilt, unless ``keep`` (then a warning).
+    """
     from flairwatch.phantom.bank import HELD_OUT_SEEDS, case_name, make_bank
 
     if n > len(HELD_OUT_SEEDS):
         raise SystemExit(f"at most {len(HELD_OUT_SEEDS)} held-out seeds exist; ask for fewer cases")
     seeds = list(HELD_OUT_SEEDS)[:n]
     fn = quick_params if quick else held_out_params
+    stamp = folder / FINGERPRINT_FILE
+    current = generator_fingerprint()
+    made_by = stamp.read_text().strip() if stamp.is_file() else None
+    if made_by not in (None, current):
+        if keep:
+            print(
+                f"WARNING: the cases in {folder} were made by generator source {made_by[:12]}, "
+                f"the current source is {current[:12]} (kept because of --keep-cases)",
+                flush=True,
+            )
+            return [folder / case_name(s) for s in seeds]
+        print(f"the generator source changed since {folder} was made: rebuilding it", flush=True)
+        shutil.rmtree(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    stamp.write_text(current + "\n")
     for seed in seeds:  # a folder made with other parameters (or generator) is rebuilt
         facts_path = folder / case_name(seed) / "case.json"
         if facts_path.is_file() and not _matches(json.loads(facts_path.read_text()), fn(seed)):
             print(f"rebuilding {facts_path.parent.name}: made with other parameters", flush=True)
             shutil.rmtree(facts_path.parent)
-    return make_bank(folder, seeds, workers=workers, progress=True, params_fn=fn)
+    done = make_bank(folder, seeds, workers=workers, progress=True, params_fn=fn)
+    if generator_fingerprint() != current:
+        # edited while this process ran (it kept the old code): mark the folder for a rebuild
+        stamp.write_text("changed-during-build\n")
+        print("WARNING: the generator source changed during the build; run again", flush=True)
+    return done
 
 
 def _matches(facts: dict[str, Any], params: PhantomParams) -> bool:
@@ -424,6 +462,7 @@ def write_markdown(
     parts: dict[str, str],
     n_cases: int,
     generator_version: str,
+    generator_source: str,
 ) -> None:
     m = engine.manifest
     gate_rows = [
@@ -435,8 +474,9 @@ def write_markdown(
             f"## Quality on held-out phantoms: {m.name} {m.version}",
             "",
             "RESEARCH USE ONLY - NOT FOR DIAGNOSIS OR TREATMENT. Measured on synthetic phantoms "
-            f"({n_cases} held-out cases, generator {generator_version}, seeds never used in "
-            "training), not on patients; validate on your own scans.",
+            f"({n_cases} held-out cases, generator {generator_version} (source "
+            f"{generator_source[:12]}), seeds never used in training), not on patients; "
+            "validate on your own scans.",
             "",
             f"Threshold {engine.threshold}, minimum lesion {engine.cfg.min_lesion_mm3} mm^3. "
             f"Baseline: FLAIR > {k:.2f} x its median inside the model's intracranial mask, same "
@@ -469,6 +509,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     ap.add_argument("--threads", type=int, default=2, help="ONNX Runtime threads")
     ap.add_argument("--workers", type=int, default=1, help="processes generating phantoms")
+    ap.add_argument(
+        "--keep-cases",
+        action="store_true",
+        help="use existing cases even if the generator source changed since (warns)",
+    )
     ap.add_argument("--generate-only", action="store_true", help="build the cases and tune only")
     ap.add_argument(
         "--quick",
@@ -482,7 +527,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 2
     cfg = Config(model=args.model, threads=args.threads)
     start = time.monotonic()
-    build_held_out(heldout, args.cases, quick=args.quick, workers=args.workers)
+    build_held_out(
+        heldout, args.cases, quick=args.quick, workers=args.workers, keep=args.keep_cases
+    )
     print(f"held-out cases ready in {heldout} ({time.monotonic() - start:.0f} s)", flush=True)
     k = tune_baseline(
         WORK / ("baseline_tuning-quick.json" if args.quick else "baseline_tuning.json"),
@@ -525,7 +572,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"{'PASS' if passed else 'FAIL'}  {name}: {_shown(value)} (required {need})")
     if len(model) < MIN_CASES and not args.quick:
         print(f"FAIL  only {len(model)} cases scored; the gate needs {MIN_CASES}")
-    write_markdown(args.table, engine, k, verdicts, parts, len(model), GENERATOR_VERSION)
+    stamp = heldout / FINGERPRINT_FILE
+    source = stamp.read_text().strip() if stamp.is_file() else "unknown"
+    write_markdown(args.table, engine, k, verdicts, parts, len(model), GENERATOR_VERSION, source)
     document = validation_document(engine, model, failures, heldout)
     publish_folder(args.report, lambda tmp: write_report_files(tmp, model, failures, document))
     print(f"\nMarkdown tables: {args.table}\nvalidation report: {args.report / 'report.md'}")
