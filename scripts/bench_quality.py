@@ -522,6 +522,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     args = ap.parse_args(argv)
     heldout = WORK / "heldout-quick" if args.quick else args.heldout
+    if args.quick:  # never overwrite the real measurement's outputs with a smoke run's
+        args.table = args.table.with_name(args.table.stem + "-quick.md")
+        args.report = args.report.with_name(args.report.name + "-quick")
     if args.cases < MIN_CASES and not args.quick:
         print(f"the gate needs at least {MIN_CASES} cases; use --quick for a smoke run")
         return 2
