@@ -96,6 +96,10 @@ def test_claim_order_state_guard_and_current_result(tmp_path: Path) -> None:
         led.move_job(high, [JobState.QUEUED], JobState.QUEUED, 2.0, priority=5)
         led.move_job(low, [JobState.QUEUED], JobState.QUEUED, 2.0, not_before=50.0)
         assert led.claim_next(10.0, "m", "1.0.0", 123, min_priority=6) is None
+        # a job queued for another model version waits for whoever runs that version
+        other = _add_series(led, "9.3", 1, 3.0)
+        led.move_job(other, [JobState.QUEUED], JobState.QUEUED, 3.0, model_version="2.0.0",
+                     model_name="m", priority=9)  # fmt: skip
         first = led.claim_next(10.0, "m", "1.0.0", 123, min_priority=0)
         assert first is not None and first.id == high and first.state is JobState.RUNNING
         assert led.claim_next(10.0, "m", "1.0.0", 123) is None  # low waits for its retry time
@@ -109,7 +113,8 @@ def test_claim_order_state_guard_and_current_result(tmp_path: Path) -> None:
         led.finish_done(job2.id, "/r/b", summary, adopted=True, seconds=1.0, now=15.0)
         rows = led.query("SELECT result_path, current FROM results ORDER BY id")
         assert rows == [("/r/a", 0), ("/r/b", 1)]
-        assert led.state_counts() == {"done": 2, "queued": 1}
+        assert led.state_counts() == {"done": 2, "queued": 2}
+        assert led.job(other).state is JobState.QUEUED
         assert led.done_since(0.0) == (2, 2.0)
 
 
