@@ -9,6 +9,8 @@
   and recorded in the ledger. From then on it is the reported result of that series revision,
   also after a reprocess with another model, which is reported beside it.
 - ``qc gallery`` writes the static review pages (see :mod:`flairwatch.gallery`).
+- ``qc cases --out DIR`` writes corrected series as case folders for ``validate`` and training
+  (see :mod:`flairwatch.qc_cases`).
 
 Masks are read with :func:`flairwatch.load.load_nifti`: array axes (i, j, k), affine in patient
 LPS mm.
@@ -20,6 +22,7 @@ import argparse
 import getpass
 import logging
 import os
+import sys
 import time
 from dataclasses import dataclass
 from pathlib import Path
@@ -205,6 +208,18 @@ def run_gallery(args: argparse.Namespace) -> int:
     return 0
 
 
+def run_cases(args: argparse.Namespace) -> int:
+    from flairwatch.qc_cases import export_cases
+
+    _, state = _state(args)
+    with Ledger.open_readonly(state) as ledger:
+        written, problems = export_cases(ledger, args.out)
+    print(f"{len(written)} case folder(s) written to {args.out}; {len(problems)} problem(s)")
+    for line in problems:
+        print(f"  {line}", file=sys.stderr)
+    return 1 if problems else 0
+
+
 def _common(p: argparse.ArgumentParser) -> None:
     p.add_argument("--config", type=Path, required=True, help="YAML config file")
     p.add_argument("--state", type=Path, help="ledger folder (overrides the config)")
@@ -241,6 +256,13 @@ def add_parser(subparsers: Any) -> None:
     _common(g)
     g.add_argument("--out", type=Path, help="output folder (default: <results>/gallery)")
     g.set_defaults(func=run_gallery)
+
+    k = sub.add_parser(
+        "cases", help="corrected masks as case folders (image + reference) for validate/training"
+    )
+    _common(k)
+    k.add_argument("--out", type=Path, required=True, help="folder for the case folders")
+    k.set_defaults(func=run_cases)
 
 
 def reviewer_name() -> str:

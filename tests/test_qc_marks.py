@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import csv
 import hashlib
+import json
 import sqlite3
 import stat
 from pathlib import Path
@@ -23,6 +24,7 @@ from flairwatch.manifest import load_manifest
 from flairwatch.pipeline import Engine
 from flairwatch.qc_marks import measure_mask
 from tests.review_fixtures import Archive, Entry, make_archive, rerun, tiny_model_version
+from tests.series_fixtures import SeriesSpec, phantom_array
 
 
 @pytest.fixture
@@ -175,3 +177,45 @@ def test_measure_mask_against_simpleitk(connectivity: int, fully: bool) -> None:
     cc.Execute(sitk.GetImageFromArray(mask.transpose(2, 1, 0)))
     assert m.lesion_count == cc.GetObjectCount()
     assert m.lesion_volume_ml == pytest.approx(mask.sum() * 0.9 * 0.9 * 3.0 / 1000.0)
+
+
+def test_corrections_become_case_folders_that_validate_reads(
+    archive: Archive, tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    from flairwatch.validate import read_case
+
+    entry = archive.entries[0]
+    edited = _edited_mask(entry, tmp_path / "edited.nii.gz")
+    cfg = str(archive.config_file)
+    args = ["qc", "correct", "--config", cfg, entry.series_key, "--mask", str(edited)]
+    assert main([*args, "--note", "extra lesion"]) == 0
+    cases = tmp_path / "cases"
+    assert main(["qc", "cases", "--config", cfg, "--out", str(cases)]) == 0
+    (case_dir,) = [p for p in cases.iterdir() if not p.name.startswith(".")]
+    assert case_dir.name == entry.series_key
+    # validate's own reader is the oracle for the case layout and the grid agreement
+    case = read_case(case_dir)
+    expected = np.asarray(nib.load(edited).dataobj)  # type: ignore[attr-defined]
+    assert np.array_equal(case.reference, expected)
+    # the image holds the pixel values written into the DICOM files (tests/series_fixtures.py)
+    assert np.array_equal(case.image.data, phantom_array(SeriesSpec()).astype(np.float32))
+    facts = json.loads((case_dir / "case.json").read_text())
+    assert facts["correction"]["note"] == "extra lesion"
+    assert "FW-0001" not in (case_dir / "case.json").read_text(), "no patient identifiers"
+    # a second run with nothing new leaves the folder alone
+    before = (case_dir / "image.nii.gz").stat().st_mtime_ns
+    assert main(["qc", "cases", "--config", cfg, "--out", str(cases)]) == 0
+    assert (case_dir / "image.nii.gz").stat().st_mtime_ns == before
+    # and validate scores the model against it end to end
+    out = tmp_path / "validation"
+    rc = main(["validate", "--model", str(tiny_model_manifest), "--cases", str(cases),
+               "--out", str(out)])  # fmt: skip
+    assert rc == 0
+    with open(out / "cases.csv", newline="") as fh:
+        (row,) = list(csv.DictReader(fh))
+    assert row["case"] == entry.series_key
+    # the model on the exported image gives back the automatic result: the image is faithful
+    assert float(row["segmented_ml"]) == pytest.approx(
+        entry.outcome.summary["lesion_volume_ml"], abs=1e-3
+    )
+    assert (row["reference_lesions"], row["detected_lesions"]) == ("3", "2")  # +1 drawn lesion
