@@ -15,6 +15,7 @@ import hashlib
 import hmac
 import io
 import json
+import shutil
 from pathlib import Path
 from typing import Any
 
@@ -263,3 +264,18 @@ def test_one_primary_per_study() -> None:
     rows = [_row("a"), _row("b", study_instance_uid="9.9"), _row("c", series_number=2)]
     marked = mark_primary(rows)
     assert {r["series_key"] for r in marked if r["primary_flair"]} == {"b", "c"}
+
+
+def test_missing_result_folder_still_gives_a_row_from_the_ledger(
+    tmp_path: Path, tiny_model_manifest: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    arc = make_archive(tmp_path / "site", tiny_model_manifest)
+    entry = arc.add("one")
+    volume = entry.outcome.summary["lesion_volume_ml"]
+    shutil.rmtree(entry.outcome.result_dir)
+    out = tmp_path / "wmh.csv"
+    assert main(["export", "--config", str(arc.config_file), "--out", str(out)]) == 0
+    _, (row,) = _read_csv(out)
+    assert float(row["lesion_volume_ml"]) == pytest.approx(volume)  # the ledger's figure
+    assert row["manufacturer"] == "" and row["series_key"] == entry.series_key
+    assert "is missing" in caplog.text
