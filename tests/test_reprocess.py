@@ -29,9 +29,11 @@ from flairwatch.change_report import Limits, compare_masks, flag_reasons, svg_sc
 from flairwatch.cli import main
 from flairwatch.ledger import JobState, Ledger
 from flairwatch.reprocess import (
+    HEARTBEAT_FRESH_SECONDS,
     REPROCESS_PRIORITY,
     Candidate,
     Progress,
+    arrivals_waiting,
     claim_rerun,
     parse_since,
     queue_reruns,
@@ -273,3 +275,15 @@ def test_progress_eta_and_terminal_bar() -> None:
     q.step("y")
     assert bar.getvalue().startswith("\r[###############---------------] 1/2 x")
     assert bar.getvalue().endswith("\n")
+
+
+def test_reruns_wait_for_arrivals_only_while_a_daemon_is_alive(ledger_only: Ledger) -> None:
+    ledger = ledger_only
+    _row, job = ledger.new_revision("1.2.3", "1.2.3.4", lambda r: ("s", "t", "e"), NOW + 20)
+    ledger.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, NOW + 20)
+    assert not arrivals_waiting(ledger, NOW + 21), "no daemon: nobody will take the arrival"
+    ledger.beat(4242, "running", NOW + 21, inbox="/inbox", started=NOW)
+    assert arrivals_waiting(ledger, NOW + 22)
+    assert not arrivals_waiting(ledger, NOW + 21 + HEARTBEAT_FRESH_SECONDS + 1), "stale beat"
+    ledger.move_job(job.id, [JobState.QUEUED], JobState.SKIPPED, NOW + 23)
+    assert not arrivals_waiting(ledger, NOW + 23)
