@@ -28,6 +28,7 @@ from pathlib import Path
 from typing import Any
 
 from flairwatch.errors import ConfigInvalid, StageFailed
+from flairwatch.results import fsync_dir
 
 log = logging.getLogger(__name__)
 
@@ -689,8 +690,4 @@ class Ledger:
         with open(tmp, "rb") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, target)
-        fd = os.open(target.parent, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
+        fsync_dir(target.parent)
