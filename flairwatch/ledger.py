@@ -28,19 +28,18 @@ from pathlib import Path
 from typing import Any
 
 from flairwatch.errors import ConfigInvalid, StageFailed
+from flairwatch.ledger_schema import SCHEMA, SCHEMA_VERSION
 from flairwatch.results import fsync_dir
 
 log = logging.getLogger(__name__)
 
 LEDGER_FILE = "ledger.sqlite3"
-SCHEMA_VERSION = 1
 BUSY_TIMEOUT_MS = 5000
 LOCK_RETRIES = 8
 # WAL needs a shared-memory index that these cannot give (sqlite.org/wal.html, howtocorrupt.html)
 NETWORK_FS_TYPES = frozenset(
     {"nfs", "nfs4", "cifs", "smb", "smb2", "smb3", "smbfs", "afs", "9p", "ceph", "glusterfs",
-     "lustre", "gpfs", "fuse.sshfs", "fuse.glusterfs", "fuse.cephfs", "davfs", "fuse.davfs2",
-     "virtiofs"}
+     "lustre", "gpfs", "fuse.sshfs", "fuse.glusterfs", "fuse.cephfs", "davfs", "fuse.davfs2"}
 )  # fmt: skip
 
 
@@ -57,101 +56,6 @@ class JobState(StrEnum):
 
 
 TERMINAL_STATES = frozenset({JobState.DONE, JobState.FAILED, JobState.REJECTED, JobState.SKIPPED})
-
-_SCHEMA = """
-CREATE TABLE series (
-    id INTEGER PRIMARY KEY,
-    study_uid TEXT NOT NULL,
-    series_uid TEXT NOT NULL,
-    revision INTEGER NOT NULL,
-    subject_key TEXT,
-    study_key TEXT,
-    series_key TEXT,
-    selection TEXT NOT NULL DEFAULT 'pending' CHECK (selection IN ('pending','selected','skipped')),
-    select_rule TEXT,
-    select_reason TEXT,
-    signature TEXT,
-    n_files INTEGER NOT NULL DEFAULT 0,
-    stable_since REAL,
-    first_seen REAL NOT NULL,
-    last_seen REAL NOT NULL,
-    UNIQUE (study_uid, series_uid, revision)
-);
-CREATE TABLE files (
-    id INTEGER PRIMARY KEY,
-    path TEXT NOT NULL UNIQUE,
-    size INTEGER NOT NULL,
-    mtime_ns INTEGER NOT NULL,
-    sop_uid TEXT,
-    study_uid TEXT,
-    series_uid TEXT,
-    series_id INTEGER REFERENCES series(id),
-    reason TEXT,
-    gone INTEGER NOT NULL DEFAULT 0,
-    first_seen REAL NOT NULL,
-    last_seen REAL NOT NULL
-);
-CREATE INDEX files_identity ON files (study_uid, series_uid);
-CREATE TABLE jobs (
-    id INTEGER PRIMARY KEY,
-    series_id INTEGER NOT NULL REFERENCES series(id),
-    state TEXT NOT NULL,
-    attempts INTEGER NOT NULL DEFAULT 0,
-    priority INTEGER NOT NULL DEFAULT 0,
-    model_name TEXT,
-    model_version TEXT,
-    not_before REAL NOT NULL DEFAULT 0,
-    created REAL NOT NULL,
-    queued REAL,
-    started REAL,
-    finished REAL,
-    seconds REAL,
-    error TEXT,
-    result_path TEXT,
-    worker_pid INTEGER,
-    worker_rss_kb INTEGER
-);
-CREATE INDEX jobs_state ON jobs (state, priority, id);
-CREATE INDEX jobs_series ON jobs (series_id);
-CREATE TABLE results (
-    id INTEGER PRIMARY KEY,
-    series_id INTEGER NOT NULL REFERENCES series(id),
-    job_id INTEGER REFERENCES jobs(id),
-    model_name TEXT NOT NULL,
-    model_version TEXT NOT NULL,
-    result_path TEXT NOT NULL,
-    lesion_volume_ml REAL,
-    lesion_count INTEGER,
-    adopted INTEGER NOT NULL DEFAULT 0,
-    current INTEGER NOT NULL DEFAULT 0,
-    created REAL NOT NULL
-);
-CREATE INDEX results_series ON results (series_id);
-CREATE TABLE qc_marks (
-    id INTEGER PRIMARY KEY,
-    result_id INTEGER NOT NULL REFERENCES results(id),
-    mark TEXT NOT NULL CHECK (mark IN ('accepted','rejected')),
-    note TEXT,
-    marked_by TEXT,
-    marked REAL NOT NULL
-);
-CREATE TABLE corrected_masks (
-    id INTEGER PRIMARY KEY,
-    result_id INTEGER NOT NULL REFERENCES results(id),
-    path TEXT NOT NULL,
-    note TEXT,
-    added REAL NOT NULL
-);
-CREATE TABLE heartbeat (
-    id INTEGER PRIMARY KEY CHECK (id = 1),
-    pid INTEGER NOT NULL,
-    host TEXT,
-    started REAL NOT NULL,
-    beat REAL NOT NULL,
-    state TEXT NOT NULL,
-    inbox TEXT
-);
-"""
 
 
 def mount_fstype(path: Path, mountinfo: str) -> str:
@@ -270,7 +174,7 @@ class Ledger:
         with self.transaction() as db:
             version = db.execute("PRAGMA user_version").fetchone()[0]
             if version == 0:
-                for statement in _SCHEMA.split(";"):
+                for statement in SCHEMA.split(";"):
                     if statement.strip():
                         db.execute(statement)
                 db.execute(f"PRAGMA user_version={SCHEMA_VERSION}")
