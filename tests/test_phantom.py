@@ -190,3 +190,47 @@ def test_bank_resumes(tmp_path: Path) -> None:
     again = make_bank(tmp_path, [3, 4], progress=False, params_fn=_tiny)
     assert (again[0] / "case.json").stat().st_mtime_ns == stamp  # complete case kept
     assert (again[1] / "case.json").is_file()
+
+
+def test_write_series_non_square_pixels(tmp_path: Path) -> None:
+    # PS3.3 C.7.6.2.1.1: Pixel Spacing = row spacing (along j) \ column spacing (along i);
+    # SimpleITK reports spacing in (i, j, k) order, so unequal i/j spacings catch a swap.
+    from flairwatch.phantom.acquire import rotation
+    from flairwatch.phantom.dicom_writer import write_series
+    from flairwatch.volume import Volume
+
+    affine = np.eye(4)
+    affine[:3, :3] = rotation((11.0, -4.0, 7.0)) @ np.diag([0.5, 0.8, 3.0])
+    affine[:3, 3] = [-60.0, -80.0, -40.0]
+    data = np.arange(20 * 14 * 5, dtype=np.float32).reshape(20, 14, 5) % 4000
+    vol = Volume(data, affine)
+    header = {
+        "PatientID": "INV-003",
+        "PatientName": "Invented^Three",
+        "StudyInstanceUID": "1.2.826.0.1.3680043.8.498.1",
+        "SeriesInstanceUID": "1.2.826.0.1.3680043.8.498.2",
+        "SeriesDescription": "AX T1 SE",
+    }
+    files = write_series(vol, tmp_path / "s", header=header)
+    ds = pydicom.dcmread(files[0])
+    assert [float(x) for x in ds.PixelSpacing] == [0.8, 0.5]
+    assert (ds.Rows, ds.Columns) == (14, 20)
+    img = read_series(tmp_path / "s")
+    assert_same_grid(img, affine, (20, 14, 5))
+    np.testing.assert_array_equal(sitk.GetArrayFromImage(img).transpose(2, 1, 0), data)
+
+
+def test_cli_registers_phantoms(tmp_path: Path) -> None:
+    import argparse
+
+    from flairwatch.phantom import cli
+
+    parser = argparse.ArgumentParser()
+    cli.add_parser(parser.add_subparsers())
+    args = parser.parse_args(["phantoms", "--out", str(tmp_path)])
+    assert (args.count, args.first_seed, args.workers) == (10, 1, 1)
+    assert args.func is cli.run
+    args = parser.parse_args(["phantoms", "--out", str(tmp_path), "--count", "0"])
+    assert cli.run(args) == 0
+    bad = parser.parse_args(["phantoms", "--out", str(tmp_path), "--workers", "0"])
+    assert cli.run(bad) == 2

@@ -69,6 +69,7 @@ class Template:
     shell_depth: FloatArray
     shell_cells: npt.NDArray[np.intp]
     shell_coarse_shape: tuple[int, int, int]
+    brain_box: tuple[slice, slice, slice]
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -180,7 +181,15 @@ def load_template(voxel_mm: int = 1) -> Template:
     ext = ((csf > 0.5) & (d_vent > 3.0)) | ~brain
     d_ext = ndi.distance_transform_edt(~ext, sampling=sampling).astype(np.float32)
     center = np.argwhere(vent).mean(axis=0)
-    icv_center = (ras_to_lps(affine_ras) @ np.append(np.argwhere(icv).mean(axis=0), 1.0))[:3]
+    icv_idx = np.argwhere(icv)
+    icv_center = (ras_to_lps(affine_ras) @ np.append(icv_idx.mean(axis=0), 1.0))[:3]
+    box_lo = np.maximum(icv_idx.min(axis=0) - 1, 0)
+    box_hi = np.minimum(icv_idx.max(axis=0) + 2, icv.shape)
+    brain_box = (
+        slice(int(box_lo[0]), int(box_hi[0])),
+        slice(int(box_lo[1]), int(box_hi[1])),
+        slice(int(box_lo[2]), int(box_hi[2])),
+    )
     shell_idx = np.flatnonzero((~icv & (d_out <= HEAD_MARGIN_MM)).ravel())
     # Skull-base voxels get a depth in the middle of the skull (diploe and bone).
     depth = np.where(base, SKULL_BASE_DEPTH_MM, d_out - 0.5 * vox)
@@ -215,6 +224,7 @@ def load_template(voxel_mm: int = 1) -> Template:
         shell_depth=shell_depth,
         shell_cells=shell_cells,
         shell_coarse_shape=(coarse_shape[0], coarse_shape[1], coarse_shape[2]),
+        brain_box=brain_box,
     )
 
 
@@ -222,8 +232,8 @@ def load_template(voxel_mm: int = 1) -> Template:
 class Subject:
     """Tissue fractions of one phantom head on the template grid (all 0..1, float32).
 
-    ``gm``, ``wm``, ``csf``, ``vent_csf`` are full grids; ``d_vent`` is the distance (mm) to
-    this subject's (possibly enlarged) ventricles. The skull and scalp layers ``bone``,
+    ``gm``, ``wm``, ``csf``, ``vent_csf`` and ``d_vent`` (distance in mm to this subject's,
+    possibly enlarged, ventricles) cover ``box``, the template's ``brain_box``. The skull and scalp layers ``bone``,
     ``marrow``, ``muscle``, ``fat``, ``skin`` are 1-D, over ``Template.shell_idx``.
     """
 
@@ -237,6 +247,12 @@ class Subject:
     muscle: FloatArray
     fat: FloatArray
     skin: FloatArray
+    box: tuple[slice, slice, slice]
+
+    @property
+    def origin(self) -> tuple[int, int, int]:
+        """Template index of this subject's first box voxel."""
+        return (int(self.box[0].start), int(self.box[1].start), int(self.box[2].start))
 
 
 def _layer(t: FloatArray, start: FloatArray | float, end: FloatArray | float) -> FloatArray:
@@ -273,17 +289,18 @@ def build_subject(
     """
     vent_grow = 4.5 * atrophy
     cortex_thin = 1.5 * atrophy
-    gm, wm = tpl.gm, tpl.wm
+    box = tpl.brain_box
+    gm, wm, tpl_d_vent = tpl.gm[box], tpl.wm[box], tpl.d_vent[box]
     if vent_grow > 0:
-        keep = np.clip(tpl.d_vent - vent_grow, 0.0, 1.0)
+        keep = np.clip(tpl_d_vent - vent_grow, 0.0, 1.0)
         gm = gm * keep
         wm = wm * keep
-        d_vent = np.maximum(tpl.d_vent - vent_grow, 0.0)
+        d_vent = np.maximum(tpl_d_vent - vent_grow, 0.0)
     else:
-        d_vent = tpl.d_vent
+        d_vent = tpl_d_vent
     if cortex_thin > 0:
-        gm = gm * np.clip(tpl.d_ext - cortex_thin, 0.0, 1.0)
-    csf = np.clip(tpl.icv - gm - wm, 0.0, 1.0)
+        gm = gm * np.clip(tpl.d_ext[box] - cortex_thin, 0.0, 1.0)
+    csf = np.clip(tpl.icv[box] - gm - wm, 0.0, 1.0)
     vent_csf = csf * (d_vent <= 0.5)
 
     t = tpl.shell_depth
@@ -311,4 +328,5 @@ def build_subject(
         muscle=muscle,
         fat=fat_layer,
         skin=skin,
+        box=box,
     )

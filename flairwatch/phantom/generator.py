@@ -171,7 +171,7 @@ def _render(
     planes, weights = slice_profile(acq)
     maps: list[tuple[npt.NDArray[np.float32], tuple[slice, slice, slice] | None]] = [(signal, None)]
     if with_truth and les.volume_ml > 0:
-        maps.append(((subj.wm[les.box] * les.fraction).astype(np.float32), les.box))
+        maps.append(((subj.wm[les.box] * les.fraction).astype(np.float32), les.tpl_box))
     sampled = sample_maps(sampler, maps, int_shape, (box_uv[0], box_uv[1]), planes, weights)
 
     # Fine tissue texture (+-3 %, ~2.5 mm grain) that the smooth average template lacks.

@@ -23,11 +23,15 @@ EDGE_SOFTNESS = 0.12  # score units over which a lesion border ramps from 0 to 1
 
 @dataclass(frozen=True, eq=False)
 class LesionMaps:
-    """Lesion fraction of the WM (0..1) and severity (0 faint .. 1 bright) inside ``box``."""
+    """Lesion fraction of the WM (0..1) and severity (0 faint .. 1 bright) inside ``box``.
+
+    ``box`` indexes the subject's arrays (``Subject.box``), ``tpl_box`` the template grid.
+    """
 
     fraction: FloatArray
     severity: FloatArray
     box: tuple[slice, slice, slice]
+    tpl_box: tuple[slice, slice, slice]
     volume_ml: float
 
 
@@ -39,6 +43,16 @@ def _wm_box(wm: FloatArray, margin: int) -> tuple[slice, slice, slice]:
         slice(int(lo[0]), int(hi[0])),
         slice(int(lo[1]), int(hi[1])),
         slice(int(lo[2]), int(hi[2])),
+    )
+
+
+def _shift(
+    box: tuple[slice, slice, slice], origin: tuple[int, int, int]
+) -> tuple[slice, slice, slice]:
+    return (
+        slice(box[0].start + origin[0], box[0].stop + origin[0]),
+        slice(box[1].start + origin[1], box[1].stop + origin[1]),
+        slice(box[2].start + origin[2], box[2].stop + origin[2]),
     )
 
 
@@ -90,16 +104,17 @@ def make_lesions(
     """
     vox = tpl.voxel_mm
     box = _wm_box(subj.wm, margin=2)
+    tpl_box = _shift(box, subj.origin)
     shape = subj.wm[box].shape
     empty = np.zeros(shape, dtype=np.float32)
     if load_ml <= 0:
-        return LesionMaps(empty, empty, box, 0.0)
+        return LesionMaps(empty, empty, box, tpl_box, 0.0)
     wm = subj.wm[box]
     d_vent = subj.d_vent[box]
-    d_ext = tpl.d_ext[box]
+    d_ext = tpl.d_ext[tpl_box]
 
     # Caps at the frontal and occipital horns: stronger away from the ventricles' middle (j = A-P).
-    j = np.arange(box[1].start, box[1].stop, dtype=np.float32)[None, :, None]
+    j = np.arange(tpl_box[1].start, tpl_box[1].stop, dtype=np.float32)[None, :, None]
     along = np.abs(j - tpl.vent_center_ijk[1]) * vox
     cap = 0.75 + 0.5 * np.clip((along - 10.0) / 25.0, 0.0, 1.0)
     pv_width = 3.0 + 7.0 * min(load_ml / 30.0, 1.0)  # mm; confluent halo at high burden
@@ -114,7 +129,7 @@ def make_lesions(
     ).astype(np.float32)
     # Supratentorial WM only (no cerebellar/brainstem lesions): above ~30 mm below the
     # ventricles' centre.
-    k = np.arange(box[2].start, box[2].stop, dtype=np.float32)[None, None, :]
+    k = np.arange(tpl_box[2].start, tpl_box[2].stop, dtype=np.float32)[None, None, :]
     supra = k > tpl.vent_center_ijk[2] - 30.0 / vox
     eligible = (wm > 0.6) & (d_vent > 1.0) & (d_ext > 2.0) & supra
     deep = eligible & (d_vent > 8.0) & (wm > 0.7)
@@ -142,4 +157,4 @@ def make_lesions(
     sev_noise = smooth_noise(shape, 12.0 / vox, rng)
     core = np.clip((score - thr) / (4.0 * EDGE_SOFTNESS), 0.0, 1.0)
     severity = lo + (hi - lo) * np.clip(0.35 + 0.45 * core + 0.3 * sev_noise, 0.0, 1.0)
-    return LesionMaps(frac, severity.astype(np.float32), box, volume)
+    return LesionMaps(frac, severity.astype(np.float32), box, tpl_box, volume)

@@ -74,29 +74,27 @@ def render_signal(
     gm_sig = np.float32(sig["gm"])
     wm_sig = np.float32(sig["wm"])
     if cortex_patches > 0:
-        patches = np.clip(smooth_noise(tpl.shape, 14.0 / vox, rng) - 0.6, 0.0, 1.2)
+        patches = np.clip(smooth_noise(subj.gm.shape, 14.0 / vox, rng) - 0.6, 0.0, 1.2)
         gm_term = subj.gm * (gm_sig * (1.0 + 0.35 * cortex_patches * patches))
     else:
         gm_term = subj.gm * gm_sig
-    out = gm_term + subj.wm * wm_sig + subj.csf * np.float32(sig["csf"])
-    shell = subj.skin * np.float32(sig["muscle"])
-    for name in ("bone", "marrow", "muscle", "fat"):
-        shell += getattr(subj, name) * np.float32(sig[name])
-    flat = out.reshape(-1)
-    flat[tpl.shell_idx] += shell
+    out = gm_term + subj.wm * wm_sig + subj.csf * np.float32(sig["csf"])  # on subj.box
 
     if flair and lining > 0:
         # Thin (1-2 mm) subependymal rim, bright on FLAIR in normal brains: not a lesion.
+        # Beyond it, a faint diffuse halo (<= 10 % above WM, ~5 mm) that raters do not label.
         rim = np.clip(1.0 - (subj.d_vent - 0.5 * vox) / 2.0, 0.0, 1.0) * (subj.d_vent > 0)
-        out += rim * (subj.wm + subj.gm) * np.float32(0.7 * lining * wm_sig)
+        halo = np.exp(-subj.d_vent / np.float32(5.0)) * (subj.d_vent > 0)
+        boost = rim * np.float32(0.7 * lining) + halo * np.float32(0.1 * lining)
+        out += boost * (subj.wm + subj.gm) * wm_sig
     if flair and inflow > 0:
         # Inflowing CSF has not seen the inversion pulse: bright swirls in the ventricles and
         # in the cisterns just below them (3rd/4th ventricle, basal cisterns).
-        k0 = int(tpl.vent_center_ijk[2] + 10.0 / vox)
+        k0 = max(int(tpl.vent_center_ijk[2] + 10.0 / vox) - subj.origin[2], 0)
         region = subj.vent_csf.copy()
         near = subj.csf[:, :, :k0] * (subj.d_vent[:, :, :k0] < 12.0)
         region[:, :, :k0] = np.maximum(region[:, :, :k0], near)
-        blobs = np.clip(smooth_noise(tpl.shape, 6.0 / vox, rng) - 0.7, 0.0, 1.0)
+        blobs = np.clip(smooth_noise(subj.csf.shape, 6.0 / vox, rng) - 0.7, 0.0, 1.0)
         out += region * blobs * np.float32(1.6 * inflow * gm_sig)
 
     if les.volume_ml > 0:
@@ -111,4 +109,11 @@ def render_signal(
         les_sig = np.interp(sev_idx, np.arange(len(lut)), lut).astype(np.float32)
         wm_box = subj.wm[les.box]
         out[les.box] += wm_box * les.fraction * (les_sig - wm_sig)
-    return np.asarray(out, dtype=np.float32)
+
+    full = np.zeros(tpl.shape, dtype=np.float32)
+    full[subj.box] = out
+    shell = subj.skin * np.float32(sig["muscle"])
+    for name in ("bone", "marrow", "muscle", "fat"):
+        shell += getattr(subj, name) * np.float32(sig[name])
+    full.reshape(-1)[tpl.shell_idx] += shell
+    return full
