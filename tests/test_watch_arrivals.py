@@ -9,12 +9,14 @@ from __future__ import annotations
 import json
 import threading
 import time
+from dataclasses import replace
 from pathlib import Path
 
 from pydicom import dcmread
 from pydicom.uid import generate_uid
 
 from tests.daemon_fixtures import (
+    FLAIR,
     complete_results,
     copy_in,
     half_built,
@@ -33,7 +35,7 @@ SETTLE = 2.5
 def test_slow_copy_is_not_processed_early(tmp_path: Path, tiny_model_manifest: Path) -> None:
     # one file per second with settle 2.5 s: the series must wait for the last file
     cfg = write_config(tmp_path, tiny_model_manifest, settle=SETTLE)
-    files = stage_series(tmp_path / "staging", "slow")
+    files = stage_series(tmp_path / "staging", "slow", replace(FLAIR, slices=8))
     proc = start_daemon(cfg, tmp_path / "daemon.log")
     try:
         wait_for(lambda: (tmp_path / "state" / "ledger.sqlite3").exists(), 30, "the ledger")
@@ -55,7 +57,7 @@ def test_slow_copy_is_not_processed_early(tmp_path: Path, tiny_model_manifest: P
     finally:
         assert stop(proc) == 0
     log = (tmp_path / "daemon.log").read_text()
-    assert "settled, 12 files" in log  # all twelve instances went into the one result
+    assert "settled, 8 files" in log  # all eight instances went into the one result
 
 
 def test_interleaved_series_and_a_late_instance(tmp_path: Path, tiny_model_manifest: Path) -> None:

@@ -16,6 +16,8 @@ import time
 from dataclasses import replace
 from pathlib import Path
 
+import pytest
+
 from tests.daemon_fixtures import (
     FLAIR,
     complete_results,
@@ -151,6 +153,7 @@ def test_watched_folder_recreated_is_watched_again(
     assert "restarting it" in (tmp_path / "daemon.log").read_text()
 
 
+@pytest.mark.filterwarnings("ignore:Invalid value for VR UI")  # the hostile UID, on purpose
 def test_hostile_header_values_stay_inside_results(
     tmp_path: Path, tiny_model_manifest: Path
 ) -> None:
