@@ -6,6 +6,7 @@ from __future__ import annotations
 import errno
 import json
 import logging
+import os
 import signal
 import sqlite3
 import subprocess
@@ -16,14 +17,15 @@ from pathlib import Path
 
 import pytest
 
+from flairwatch.config import Config
 from flairwatch.errors import InputRejected, StageFailed
 from flairwatch.inbox import Known, Step, plan, signature
 from flairwatch.ledger import JobState, Ledger
 from flairwatch.observe import OverflowHook
 from flairwatch.records import FileRecord, Series, SeriesHeader
 from flairwatch.status import gather, problems, render
-from flairwatch.watch import Tuning, retry_delay
-from flairwatch.workers import classify
+from flairwatch.watch import Daemon, Tuning, retry_delay
+from flairwatch.workers import Report, classify
 from tests.daemon_fixtures import (
     FLAIR,
     REPO,
@@ -277,3 +279,52 @@ def test_status_report_from_a_real_ledger(tmp_path: Path) -> None:
     text = render(report)
     assert "done 1" in text and "rejected 1" in text and "health: OK" in text
     assert "series e9.2 r1: gap" in text
+
+
+def test_transient_failures_back_off_then_give_up(tmp_path: Path) -> None:
+    # the daemon's bookkeeping on a real ledger, without workers: three tries, then failed
+    cfg = Config(inbox=tmp_path / "in", results=tmp_path / "out", state=tmp_path)
+    tuning = Tuning(max_attempts=3, retry_base_seconds=10)
+    with Ledger.open(tmp_path) as led:
+        daemon = Daemon(cfg, led, b"k" * 32, tuning=tuning)
+        _, job = led.new_revision("1.2", "9.1", _fixed_keys("e1"), 0.0)
+        led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 0.0)
+        now = 100.0
+        for attempt in (1, 2, 3):
+            claimed = led.claim_next(now, "m", "1", 5)
+            assert claimed is not None and claimed.attempts == attempt
+            daemon.record(Report("failed", job.id, "No space left on device", True), now)
+            after = led.job(job.id)
+            if attempt < 3:
+                assert after.state is JobState.QUEUED
+                assert after.not_before == now + 10 * 2 ** (attempt - 1)
+                assert led.claim_next(now, "m", "1", 5) is None  # not before its time
+                now = after.not_before
+        assert after.state is JobState.FAILED
+        assert after.error == "gave up after 3 attempts: No space left on device"
+        # a permanent failure is final at once
+        _, job2 = led.new_revision("1.2", "9.2", _fixed_keys("e2"), 0.0)
+        led.move_job(job2.id, [JobState.SETTLING], JobState.QUEUED, 0.0)
+        assert led.claim_next(now, "m", "1", 5) is not None
+        daemon.record(Report("rejected", job2.id, "slice gap"), now)
+        assert led.job(job2.id).state is JobState.REJECTED
+
+
+def test_worker_killed_mid_series_is_retried(tmp_path: Path, tiny_model_manifest: Path) -> None:
+    cfg = write_config(tmp_path, tiny_model_manifest, settle=0.5)
+    copy_in(stage_series(tmp_path / "staging", "a", SLOW), tmp_path / "inbox", "a")
+    log = tmp_path / "daemon.log"
+    proc = start_daemon(cfg, log)
+    try:
+        wait_for(lambda: _log_has(log, "running (attempt 1)"), 30, "a running series", step=0.02)
+        db = sqlite3.connect(tmp_path / "state" / "ledger.sqlite3")
+        (worker,) = db.execute("SELECT worker_pid FROM jobs WHERE state = 'running'").fetchone()
+        os.kill(worker, signal.SIGKILL)  # out of memory, a crash in a native library...
+        wait_for(lambda: _log_has(log, "retry in 30 s"), 20, "the retry")
+        state, attempts, error = db.execute("SELECT state, attempts, error FROM jobs").fetchone()
+        db.close()
+        assert (state, attempts) == ("queued", 1) and "exit code -9" in error
+        # a fresh worker took the dead one's place
+        wait_for(lambda: log.read_text().count("worker 0 died") == 1, 10, "the death notice")
+    finally:
+        assert stop(proc) == 0
