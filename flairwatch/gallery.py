@@ -33,6 +33,7 @@ from flairwatch.review_queries import ResultRecord, reported_results
 
 log = logging.getLogger(__name__)
 
+GALLERY_FOLDER = "gallery"  # under the results folder
 INDEX_FILE = "index.html"
 STATUSES = ("unreviewed", "accepted", "rejected", "corrected")
 DEFAULT_CONNECTIVITY = 26

@@ -196,12 +196,12 @@ def run_correct(args: argparse.Namespace) -> int:
 
 
 def run_gallery(args: argparse.Namespace) -> int:
-    from flairwatch.gallery import write_gallery
+    from flairwatch.gallery import GALLERY_FOLDER, write_gallery
 
     cfg, state = _state(args)
     if cfg.results is None:
         raise ConfigInvalid("qc gallery needs 'results' in the config file (or --results DIR)")
-    out = args.out or cfg.results / "gallery"
+    out = args.out or cfg.results / GALLERY_FOLDER
     with Ledger.open_readonly(state) as ledger:
         pages = write_gallery(ledger, out, connectivity=cfg.connectivity, now=time.time())
     print(f"gallery written to {out / 'index.html'} ({len(pages)} pages)")

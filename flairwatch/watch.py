@@ -36,6 +36,7 @@ from typing import Any
 from flairwatch import keys, results
 from flairwatch.config import Config
 from flairwatch.errors import ConfigInvalid, FlairwatchError, InputRejected, ModelInvalid
+from flairwatch.gallery import GALLERY_FOLDER, refresh_study
 from flairwatch.inbox import (
     InboxScanner,
     Known,
@@ -272,6 +273,13 @@ class Daemon:
                 "series %s: done in %.1f s%s, WMH %s mL, worker RSS %d MiB",
                 label, report.seconds, " (adopted)" if report.adopted else "",
                 report.summary.get("lesion_volume_ml"), report.rss_kb // 1024,
+            )  # fmt: skip
+            # the daemon's own model is the current one: point the series folder at it
+            version_dir = Path(report.result_dir)
+            results.set_current(version_dir.parent, version_dir.name)
+            refresh_study(
+                self.ledger, self.results / GALLERY_FOLDER, job.series_id,
+                connectivity=self.cfg.connectivity, now=now,
             )  # fmt: skip
             self._delete_inputs(job.series_id)
             return
