@@ -9,6 +9,7 @@ import dataclasses
 import json
 from pathlib import Path
 
+import highdicom as hd
 import nibabel as nib
 import numpy as np
 import pydicom
@@ -81,6 +82,11 @@ def test_series_geometry_matches_volume(tmp_path: Path, kind: str, axial_case: P
     write_case(case, tmp_path / "c", patient_id="INV-001", patient_name="Invented^Person")
     img = read_series(tmp_path / "c" / "image")
     assert_same_grid(img, case.image.affine_lps, case.image.shape)
+    # Second oracle (CHECK-SOURCES.md): highdicom builds the same volume from the datasets.
+    datasets = [pydicom.dcmread(f) for f in (tmp_path / "c" / "image").glob("*.dcm")]
+    hd_vol = hd.get_volume_from_series(datasets)
+    assert hd_vol.spatial_shape[0] == case.image.shape[2]
+    np.testing.assert_allclose(sorted(hd_vol.spacing), sorted(case.image.spacing), atol=1e-4)
     # Pixels: GetArrayFromImage gives (k, j, i); the Volume holds (i, j, k).
     pixels = sitk.GetArrayFromImage(img).transpose(2, 1, 0)
     np.testing.assert_array_equal(pixels, np.clip(np.rint(case.image.data), 0, 4095))

@@ -37,9 +37,10 @@ MAX_PIXEL = 4095  # 12-bit stored range, as many MR scanners use (common practic
 REQUIRED_KEYS = ("PatientID", "PatientName", "StudyInstanceUID", "SeriesInstanceUID")
 
 
-def _ds(x: float) -> str:
-    """Decimal String of at most 16 characters (DICOM PS3.5 DS)."""
-    return format_number_as_ds(float(x))
+def _ds(x: float, decimals: int | None = None) -> str:
+    """Decimal String of at most 16 characters (DICOM PS3.5 DS), optionally rounded first."""
+    value = float(x) if decimals is None else round(float(x), decimals)
+    return format_number_as_ds(value)
 
 
 def uid_from(*parts: object) -> UID:
@@ -57,7 +58,7 @@ def _plane_geometry(volume: Volume) -> tuple[list[str], list[str], np.ndarray, f
     if spacing_k <= 0 or not np.allclose(aff[:3, 2], normal * spacing_k, atol=1e-4 * dk):
         raise ValueError("the slice axis (k) must run along row x column for a DICOM series")
     iop = [_ds(x) for x in (*row_cos, *col_cos)]
-    pixel_spacing = [_ds(dj), _ds(di)]  # row spacing \ column spacing
+    pixel_spacing = [_ds(dj, 9), _ds(di, 9)]  # row spacing \ column spacing
     return iop, pixel_spacing, normal, spacing_k
 
 
@@ -132,8 +133,8 @@ def write_series(
         ds.ImageOrientationPatient = iop
         ds.SliceLocation = _ds(float(np.dot(position, normal)))
         ds.PixelSpacing = pixel_spacing
-        ds.SliceThickness = _ds(thickness)
-        ds.SpacingBetweenSlices = _ds(spacing_k)
+        ds.SliceThickness = _ds(thickness, 6)
+        ds.SpacingBetweenSlices = _ds(spacing_k, 6)
         ds.PatientPosition = "HFS"
         ds.SamplesPerPixel = 1
         ds.PhotometricInterpretation = "MONOCHROME2"
@@ -143,8 +144,8 @@ def write_series(
         ds.BitsStored = 12
         ds.HighBit = 11
         ds.PixelRepresentation = 0
-        ds.WindowCenter = _ds(window[0])
-        ds.WindowWidth = _ds(window[1])
+        ds.WindowCenter = _ds(window[0], 1)
+        ds.WindowWidth = _ds(window[1], 1)
         ds.PixelData = np.ascontiguousarray(pixels[:, :, k].T).tobytes()  # rows = j, columns = i
         name = hashlib.sha1(sop_uid.encode()).hexdigest()[:20] + ".dcm"
         path = out_dir / name

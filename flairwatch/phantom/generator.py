@@ -68,7 +68,7 @@ class PhantomCase:
 def head_pose(params: PhantomParams, tpl: Template) -> Matrix:
     """4x4 map from template LPS mm to patient LPS mm (scale, rotation, small shift)."""
     rng = rng_for(params.seed, "pose")
-    shift = rng.normal(0.0, 3.0, 3)
+    shift = np.clip(rng.normal(0.0, 5.0, 3), -12.0, 12.0)  # head off the FOV centre
     center = np.asarray(tpl.icv_center_lps)
     pose = np.eye(4)
     pose[:3, :3] = (
@@ -125,6 +125,7 @@ def _render(
         inflow=params.inflow,
         cortex_patches=params.cortex_patches,
         rng=rng_for(seed, "lookalikes"),
+        jitter=params.relaxation_jitter,
     )
 
     pose = head_pose(params, tpl)
@@ -182,7 +183,7 @@ def _render(
         * bias_field(int_shape, int_spacing, params.bias_strength, rng_for(seed, "bias"))
     )
     image = upsample_inplane(image, f, (cols, rows))
-    gain = params.signal_scale / tissue_signals(seq)["wm"]
+    gain = params.signal_scale / tissue_signals(seq, params.relaxation_jitter)["wm"]
     noise_rng = rng_for(seed, f"noise-{seq.kind}-{seq.tr_ms}-{seq.te_ms}")
     image = add_rician_noise(
         image * np.float32(gain), params.noise_level * params.signal_scale, noise_rng

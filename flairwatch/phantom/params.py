@@ -85,7 +85,8 @@ class PhantomParams:
     ``cortex_patches``) are 0 (off) .. 1 (strong). ``bias_strength`` is the standard deviation
     of the log bias field; ``noise_level`` the Gaussian sigma relative to the WM signal;
     ``signal_scale`` the WM level in stored pixel units. ``head_scale`` scales the template
-    head (about 1.45 L intracranial at 0.89); ``head_aspect`` stretches its x, y, z axes. ``template_mm`` 2 uses a 2 mm
+    head (about 1.45 L intracranial at 0.89); ``head_aspect`` stretches its x, y, z axes.
+    ``relaxation_jitter`` multiplies (WM T1, WM T2, GM T1, GM T2) of the tissue table. ``template_mm`` 2 uses a 2 mm
     template (fast, for tests).
     """
 
@@ -106,9 +107,23 @@ class PhantomParams:
     bias_strength: float
     noise_level: float
     signal_scale: float
+    relaxation_jitter: tuple[float, float, float, float]
     acquisition: AcquisitionParams
     template_mm: int = 1
     generator_version: str = field(default=GENERATOR_VERSION)
+
+
+def _draw_jitter(rng: np.random.Generator) -> tuple[float, float, float, float]:
+    """(WM T1, WM T2, GM T1, GM T2) multipliers: a shared T1 and T2 factor (+-6 %) times a
+    small per-tissue one (+-2 %), which keeps the FLAIR contrast order (tests check it)."""
+    c1, c2 = rng.uniform(0.94, 1.06, 2)
+    e = rng.uniform(0.98, 1.02, 4)
+    return (
+        round(float(c1 * e[0]), 4),
+        round(float(c2 * e[1]), 4),
+        round(float(c1 * e[2]), 4),
+        round(float(c2 * e[3]), 4),
+    )
 
 
 def _draw_acquisition(
@@ -119,7 +134,7 @@ def _draw_acquisition(
     ti_error = rng.uniform(-0.09, 0.05) if rng.random() < 0.35 else rng.normal(0.0, 0.01)
     if kind == "2d_axial":
         tr = rng.uniform(8000.0, 11000.0)  # common practice for 2D FLAIR
-        te = rng.uniform(95.0, 140.0)
+        te = rng.uniform(90.0, 130.0)
         rows = int(rng.choice([256, 320, 384, 448, 512]))
         fov = rng.uniform(210.0, 250.0)
         inplane = fov / rows
@@ -131,7 +146,9 @@ def _draw_acquisition(
         tilt = rng.uniform(-5.0, 15.0)
     else:
         tr = rng.uniform(4800.0, 6500.0)  # common practice for 3D FLAIR
-        te = rng.uniform(115.0, 150.0)
+        # Equivalent single-echo TE: the variable-flip-angle echo train's effective TE
+        # (300-400 ms) overstates its T2 weighting (from memory).
+        te = rng.uniform(135.0, 165.0)
         rows, cols = 240, 240
         inplane, thickness, gap = 1.0, 1.0, 0.0
         n_slices = int(rng.choice([160, 168, 176]))
@@ -196,6 +213,7 @@ def sample_params(
         cortex_patches=round(rng.uniform(0.0, 1.0), 3) if rng.random() < 0.5 else 0.0,
         bias_strength=round(rng.uniform(0.3, 0.5) if strong_bias else rng.uniform(0.05, 0.25), 3),
         noise_level=round(rng.uniform(0.02, 0.07), 4),
-        signal_scale=round(rng.uniform(400.0, 1000.0), 1),
+        signal_scale=round(rng.uniform(300.0, 700.0), 1),
+        relaxation_jitter=_draw_jitter(rng),
         acquisition=_draw_acquisition(rng, kind, field_strength_t),
     )

@@ -76,21 +76,37 @@ CITED_RANGES_MS: dict[tuple[float, str, str], tuple[float, float]] = {
 
 # Lesion (WMH) relaxation relative to normal WM as a function of a severity s in [0, 1]:
 # demyelination / gliosis / oedema lengthen T1 and T2 and raise water content (from memory,
-# tuned so that s = 0 gives about 1.3x and s = 1 about 3x the WM signal on typical FLAIR).
-LESION_T1_FACTOR = (1.15, 0.55)  # T1 = T1_wm * (a + b s)  [mem, tuned]
-LESION_T2_FACTOR = (1.28, 1.90)  # T2 = T2_wm * (a + b s)  [mem, tuned]
-LESION_PD_FACTOR = (1.04, 0.14)  # PD = PD_wm * (a + b s)  [mem, tuned]
+# tuned so that s = 0 gives about 1.2-1.5x and s = 1 about 2-3x the WM signal on typical FLAIR,
+# and so that even faint lesions keep a T2 above GM's (brighter than GM at any TE).
+LESION_T1_FACTOR = (1.20, 0.50)  # T1 = T1_wm * (a + b s)  [mem, tuned]
+LESION_T2_FACTOR = (1.42, 1.70)  # T2 = T2_wm * (a + b s)  [mem, tuned]
+LESION_PD_FACTOR = (0.98, 0.14)  # PD = PD_wm * (a + b s)  [mem, tuned]
 
 
-def tissue_table(field_strength_t: float) -> dict[str, Tissue]:
-    """Return the tissue table for 1.5 T or 3 T (nearest of the two)."""
+Jitter = tuple[float, float, float, float]
+
+
+def tissue_table(field_strength_t: float, jitter: Jitter | None = None) -> dict[str, Tissue]:
+    """Return the tissue table for 1.5 T or 3 T (nearest of the two).
+
+    ``jitter`` = (WM T1, WM T2, GM T1, GM T2) multipliers: one head's normal variation
+    around the table's population values.
+    """
     key = 1.5 if field_strength_t < 2.25 else 3.0
-    return TISSUES[key]
+    table = TISSUES[key]
+    if jitter is None:
+        return table
+    wm, gm = table["wm"], table["gm"]
+    return {
+        **table,
+        "wm": Tissue(wm.t1_ms * jitter[0], wm.t2_ms * jitter[1], wm.pd),
+        "gm": Tissue(gm.t1_ms * jitter[2], gm.t2_ms * jitter[3], gm.pd),
+    }
 
 
-def lesion_tissue(severity: float, field_strength_t: float) -> Tissue:
+def lesion_tissue(severity: float, field_strength_t: float, jitter: Jitter | None = None) -> Tissue:
     """Relaxation of a white-matter lesion of the given severity (0 faint .. 1 bright)."""
-    wm = tissue_table(field_strength_t)["wm"]
+    wm = tissue_table(field_strength_t, jitter)["wm"]
     s = float(np.clip(severity, 0.0, 1.0))
     return Tissue(
         t1_ms=wm.t1_ms * (LESION_T1_FACTOR[0] + LESION_T1_FACTOR[1] * s),
@@ -149,11 +165,12 @@ def lesion_signal_lut(
     te_ms: float,
     ti_ms: float | None,
     levels: int = 33,
+    jitter: Jitter | None = None,
 ) -> FloatArray:
     """Lesion signal sampled at ``levels`` severities evenly spaced over 0..1 (float32)."""
     out = [
         sequence_signal(
-            lesion_tissue(s, field_strength_t),
+            lesion_tissue(s, field_strength_t, jitter),
             sequence=sequence,
             tr_ms=tr_ms,
             te_ms=te_ms,

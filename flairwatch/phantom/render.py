@@ -16,7 +16,7 @@ import numpy.typing as npt
 from flairwatch.phantom.anatomy import Subject, Template
 from flairwatch.phantom.lesions import LesionMaps
 from flairwatch.phantom.noise import smooth_noise
-from flairwatch.phantom.physics import lesion_signal_lut, sequence_signal, tissue_table
+from flairwatch.phantom.physics import Jitter, lesion_signal_lut, sequence_signal, tissue_table
 
 FloatArray = npt.NDArray[np.float32]
 
@@ -41,13 +41,13 @@ def other_sequence(contrast: str, field_strength_t: float) -> Sequence:
     raise ValueError(f"unknown contrast {contrast!r}: use 't1' or 't2'")
 
 
-def tissue_signals(seq: Sequence) -> dict[str, float]:
+def tissue_signals(seq: Sequence, jitter: Jitter | None = None) -> dict[str, float]:
     """Signal of each tissue of the table for this sequence (arbitrary units, M0 = 1)."""
     return {
         name: sequence_signal(
             t, sequence=seq.kind, tr_ms=seq.tr_ms, te_ms=seq.te_ms, ti_ms=seq.ti_ms
         )
-        for name, t in tissue_table(seq.field_strength_t).items()
+        for name, t in tissue_table(seq.field_strength_t, jitter).items()
     }
 
 
@@ -61,13 +61,15 @@ def render_signal(
     inflow: float,
     cortex_patches: float,
     rng: np.random.Generator,
+    jitter: Jitter | None = None,
 ) -> FloatArray:
     """Signal per template voxel (float32, M0 = 1 units).
 
     Look-alike strengths are 0..1; pass 0 to switch one off. Inflow and lining only apply to
-    inversion-recovery (FLAIR) sequences.
+    inversion-recovery (FLAIR) sequences. ``jitter`` scales WM/GM relaxation times
+    (see :func:`~flairwatch.phantom.physics.tissue_table`).
     """
-    sig = tissue_signals(seq)
+    sig = tissue_signals(seq, jitter)
     flair = seq.kind == "ir"
     vox = tpl.voxel_mm
 
@@ -104,6 +106,7 @@ def render_signal(
             tr_ms=seq.tr_ms,
             te_ms=seq.te_ms,
             ti_ms=seq.ti_ms,
+            jitter=jitter,
         )
         sev_idx = les.severity * np.float32(len(lut) - 1)
         les_sig = np.interp(sev_idx, np.arange(len(lut)), lut).astype(np.float32)
