@@ -9,14 +9,13 @@ are kept beside the inbox, so the demo can also show how the model did.
 from __future__ import annotations
 
 import argparse
+import csv
 import shutil
-import sys
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
-from flairwatch.config import Config
 from flairwatch.errors import ConfigInvalid
 
 DEFAULT_FOLDER = Path("demo")
@@ -98,43 +97,91 @@ def build_inbox(folder: Path, *, say: Callable[[str], None] = print) -> tuple[Pa
     return inbox, cases
 
 
-def run_demo(folder: Path, cfg: Config, *, say: Callable[[str], None] = print) -> int:
-    from flairwatch.process import run_process
+def write_demo_config(folder: Path, model: Path | None) -> Path:
+    """The demo's own config file, so ``status``, ``export`` and ``qc`` work on it afterwards."""
+    lines = [
+        "# flairwatch demo settings (see config.example.yaml for every key)",
+        "inbox: inbox",
+        "results: results",
+        "state: state",
+        "settle_seconds: 2",
+        "rescan_seconds: 5",
+    ]
+    if model is not None:
+        lines.append(f"model: {model.resolve()}")
+    path = folder / "flairwatch.yaml"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def truth_by_series(cases: Path) -> dict[str, float]:
+    """Series Instance UID -> truth lesion volume (mL) of each demo case."""
+    from flairwatch.discover import read_record
+    from flairwatch.load import load_nifti
+
+    truth = {}
+    for case_dir in sorted(p for p in cases.iterdir() if p.is_dir()):
+        first = next(iter(sorted((case_dir / "image").iterdir())))
+        header = read_record(first).header
+        ref = load_nifti(case_dir / "wmh_reference.nii.gz")
+        if header is not None:
+            truth[header.series_uid] = float((ref.data == 1).sum()) * ref.voxel_volume_mm3 / 1000
+    return truth
+
+
+def run_demo(folder: Path, model: Path | None, *, say: Callable[[str], None] = print) -> int:
+    """Make the inbox, run the daemon once over it, then the gallery and the table."""
+    from flairwatch.cli import main as cli
 
     start = time.perf_counter()
     say(f"flairwatch demo: {STUDY_NAME}; every participant and scan here is invented.")
+    folder.mkdir(parents=True, exist_ok=True)
     inbox, cases = build_inbox(folder, say=say)
+    config = write_demo_config(folder, model)
+    say(f"\nwatching {inbox} once: every FLAIR series that has settled is processed ...")
+    rc = cli(["watch", "--config", str(config), "--once"])
+    cli(["--quiet", "qc", "gallery", "--config", str(config)])
+    table = folder / "wmh_table.csv"
+    cli(["--quiet", "export", "--config", str(config), "--out", str(table)])
+    truth = truth_by_series(cases)
+    say(f"\nfinished in {time.perf_counter() - start:.0f} s (exit code {rc}).\n")
+    say(f"{'participant key':<16} {'series':<14} {'WMH mL':>8} {'truth mL':>9} {'lesions':>8}")
+    with open(table, newline="", encoding="utf-8") as fh:
+        for row in csv.DictReader(fh):
+            t = truth.get(row.get("series_instance_uid", ""))
+            say(
+                f"{row['subject_key']:<16} {row['series_description'][:14]:<14} "
+                f"{float(row['lesion_volume_ml']):>8.2f} "
+                f"{'' if t is None else f'{t:.2f}':>9} {row['lesion_count']:>8}"
+            )
     results = folder / "results"
-    say(f"\nrunning the main job on {inbox} ...")
-    rc = run_process([inbox], results, cfg, say=say, warn=lambda s: print(s, file=sys.stderr))
-    say(f"\nfinished in {time.perf_counter() - start:.0f} s. Results: {results.resolve()}")
-    for qc in sorted(results.rglob("qc.png")):
-        say(f"  QC picture: {qc.resolve()}")
     say(
-        "Look at the qc.png files (lesion outlines in red), summary.json for the numbers, and\n"
-        f"lesions.csv for each lesion. Truth masks for these synthetic scans are in {cases.resolve()}.\n"
+        f"\nWhere to look:\n"
+        f"  QC gallery (open in a browser): {(results / 'gallery' / 'index.html').resolve()}\n"
+        f"  one table for statistics:       {table.resolve()}\n"
+        f"  result folders:                 {results.resolve()}\n"
+        f"  truth masks of these scans:     {cases.resolve()}\n"
+        f"  ledger: flairwatch status --config {config}\n"
         "RESEARCH USE ONLY: not for diagnosis; the model was trained on synthetic images only."
     )
     return rc
 
 
 def add_parser(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
-    from flairwatch.cli import add_model_options
-
     p = subparsers.add_parser(
         "demo",
         help="make a demo inbox of invented participants and run the main job on it",
         description="Make synthetic FLAIR scans of invented participants and segment them.",
     )
     p.add_argument("--out", type=Path, default=DEFAULT_FOLDER, help="demo folder (default ./demo)")
-    add_model_options(p)
+    p.add_argument("--model", type=Path, help="model manifest (default: the shipped model)")
     p.set_defaults(func=_run)
 
 
 def _run(args: argparse.Namespace) -> int:
-    from flairwatch.cli import config_from_args
-
-    cfg = config_from_args(args)
     if args.out.exists() and not args.out.is_dir():
         raise ConfigInvalid(f"--out {args.out} is a file; choose a folder")
-    return run_demo(args.out, cfg, say=lambda s: print(s, flush=True))
+    model = args.model
+    if model is not None and not model.is_file():
+        raise ConfigInvalid(f"--model {model} does not exist; pass a model manifest (.yaml)")
+    return run_demo(args.out, model, say=lambda s: print(s, flush=True))
