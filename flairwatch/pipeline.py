@@ -89,6 +89,16 @@ def _largest_component_filled(mask: np.ndarray) -> np.ndarray:
     return np.asarray(ndimage.binary_fill_holes(largest), dtype=np.uint8)
 
 
+def _head_cut_off(slices: np.ndarray, level: float = 0.3, fraction: float = 0.01) -> bool:
+    """True when normalised tissue (> ``level``) covers more than ``fraction`` of the model
+    grid's border pixels, i.e. the series' head does not fit the model's field of view.
+    ``slices`` is (K, H, W) on the model grid."""
+    border = np.concatenate(
+        [slices[:, 0, :], slices[:, -1, :], slices[:, :, 0], slices[:, :, -1]], axis=1
+    )
+    return bool(np.mean(border > level) > fraction)
+
+
 def analyse(
     volume: Volume,
     segmenter: Segmenter,
@@ -123,12 +133,11 @@ def analyse(
             restrict_to=icv,
         )
     icv_ml = None if icv is None else float(icv.sum()) * volume.voxel_volume_mm3 / 1000.0
-    fov = np.multiply(m.grid.shape, m.grid.spacing_mm)
-    extent = np.multiply(gmap.reoriented_shape[:2], gmap.reoriented_spacing_mm[:2])
-    if np.any(extent > fov + 1e-6):
+    if _head_cut_off(x[:, m.channels // 2]):
+        fov = np.multiply(m.grid.shape, m.grid.spacing_mm)
         warnings.append(
-            f"the series' field of view ({extent[0]:.0f} x {extent[1]:.0f} mm) is larger than the "
-            f"model's ({fov[0]:.0f} x {fov[1]:.0f} mm); tissue outside the model's view is not segmented"
+            f"the head reaches the edge of the model's {fov[0]:.0f} x {fov[1]:.0f} mm view; "
+            "tissue outside it is not segmented: check the QC image"
         )
     if icv_ml is not None and not 800.0 <= icv_ml <= 2300.0:
         warnings.append(

@@ -147,3 +147,18 @@ def test_usage_errors_exit_2_with_one_line(
     err = capsys.readouterr().err.strip()
     assert rc == 2
     assert message in err and len(err.splitlines()) == 1
+
+
+def test_head_larger_than_the_model_view_is_warned_about(
+    tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    # the tiny model sees 64 x 64 mm; a 96 x 96 mm head is cut off, a 64 x 64 mm field is not
+    write_series(tmp_path / "big", SeriesSpec(rows=96, columns=96, lesions=()))
+    write_series(tmp_path / "small", SeriesSpec(lesions=()))
+    for name, expect in (("big", True), ("small", False)):
+        out = tmp_path / f"out-{name}"
+        args = ["process", str(tmp_path / name), "--results", str(out)]
+        assert main([*args, "--model", str(tiny_model_manifest)]) == 0
+        (vdir,) = _version_dirs(out)
+        warnings = json.loads((vdir / "summary.json").read_text())["warnings"]
+        assert any("edge of the model" in w for w in warnings) is expect, warnings
