@@ -16,7 +16,7 @@ import numpy as np
 import numpy.typing as npt
 from scipy import ndimage as ndi
 
-from flairwatch.phantom.noise import resize_linear, smooth_noise
+from flairwatch.phantom.noise import resize_linear, smooth_noise, upsample_inplane
 from flairwatch.phantom.params import AcquisitionParams
 
 FloatArray = npt.NDArray[np.float32]
@@ -227,8 +227,31 @@ def bias_field(
     return np.exp(np.float32(strength) * field).astype(np.float32)
 
 
-def add_rician_noise(signal: FloatArray, sigma: float, rng: np.random.Generator) -> FloatArray:
-    """Magnitude of signal plus complex Gaussian noise (sigma per channel): Rician statistics."""
-    re = signal + np.float32(sigma) * rng.standard_normal(signal.shape, dtype=np.float32)
-    im = np.float32(sigma) * rng.standard_normal(signal.shape, dtype=np.float32)
+def _noise_field(shape: tuple[int, ...], grain: float, rng: np.random.Generator) -> FloatArray:
+    """Unit-variance Gaussian noise; with ``grain`` > 1 it is drawn on a grid ``grain`` times
+    coarser in-plane and interpolated, like the noise of an image reconstructed on a finer
+    matrix than it was acquired (zero-filled k-space)."""
+    if grain <= 1.0:
+        return rng.standard_normal(shape, dtype=np.float32)
+    coarse = (
+        math.ceil((shape[0] - 1) / grain) + 2,
+        math.ceil((shape[1] - 1) / grain) + 2,
+        shape[2],
+    )
+    field = upsample_inplane(
+        rng.standard_normal(coarse, dtype=np.float32), grain, (shape[0], shape[1])
+    )
+    sd = float(field.std())
+    return field / np.float32(sd if sd > 0 else 1.0)
+
+
+def add_rician_noise(
+    signal: FloatArray, sigma: float, rng: np.random.Generator, *, grain: float = 1.0
+) -> FloatArray:
+    """Magnitude of signal plus complex Gaussian noise (sigma per channel): Rician statistics.
+
+    ``grain`` (>= 1, in pixels) correlates the noise in-plane (see :func:`_noise_field`).
+    """
+    re = signal + np.float32(sigma) * _noise_field(signal.shape, grain, rng)
+    im = np.float32(sigma) * _noise_field(signal.shape, grain, rng)
     return np.sqrt(re * re + im * im, dtype=np.float32)
