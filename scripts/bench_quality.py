@@ -243,7 +243,11 @@ def baseline_mask(
 def tune_baseline(
     cache: Path, *, min_lesion_mm3: float, connectivity: int, template_mm: int = 1
 ) -> float:
-    """Choose ``k`` on training-seed phantoms (cached in ``cache`` as JSON); return it."""
+    """Choose ``k`` on training-seed phantoms; return it.
+
+    Cached in ``cache`` (JSON) with its settings and the generator source; chosen again when
+    either changes.
+    """
     settings = {
         "seeds": list(TUNE_SEEDS),
         "loads_ml": list(TUNE_LOADS_ML),
@@ -251,6 +255,7 @@ def tune_baseline(
         "min_lesion_mm3": min_lesion_mm3,
         "connectivity": connectivity,
         "template_mm": template_mm,
+        "generator_source": generator_fingerprint(),
     }
     if cache.is_file():
         saved = json.loads(cache.read_text())
