@@ -101,12 +101,17 @@ def update_cache(sources: list[tuple[str, Path]], cache: Path) -> int:
     return added
 
 
+def _complete(paths: list[Path]) -> list[Path]:
+    """Cached files that are fully written (a ``.part.npz`` is still being written)."""
+    return sorted(p for p in paths if not p.name.endswith(".part.npz"))
+
+
 def cached_training_files(cache: Path) -> list[Path]:
-    return sorted(p for p in cache.glob("*.npz") if not p.name.startswith("val-"))
+    return _complete([p for p in cache.glob("*.npz") if not p.name.startswith("val-")])
 
 
 def cached_validation_files(cache: Path) -> list[Path]:
-    return sorted(cache.glob("val-*.npz"))
+    return _complete(list(cache.glob("val-*.npz")))
 
 
 # ---------------------------------------------------------------------------------------- losses
@@ -182,6 +187,14 @@ class StopFlag:
         self.stop = True
 
 
+def case_weights(cases: list[CaseData], bank_weight: float) -> np.ndarray | None:
+    """Sampling weights: case folders built on disk (``bank-``) count ``bank_weight`` times."""
+    if bank_weight == 1.0:
+        return None
+    w = np.array([bank_weight if c.name.startswith("bank-") else 1.0 for c in cases])
+    return np.asarray(w / w.sum())
+
+
 def _load_cases(files: list[Path], known: dict[str, CaseData]) -> list[CaseData]:
     for path in files:
         if path.stem not in known:
@@ -200,6 +213,7 @@ def train(args: argparse.Namespace) -> None:
     net = build_net((widths[0], widths[1], widths[2], widths[3]))
     opt = torch.optim.AdamW(net.parameters(), lr=args.lr, weight_decay=1e-4)
     step, train_s, case_names = 0, 0.0, []
+    history: list[dict[str, Any]] = []
     if ckpt_path.is_file() and not args.fresh:
         state = torch.load(ckpt_path, weights_only=False)
         net = build_net(tuple(state["widths"]))
@@ -209,6 +223,7 @@ def train(args: argparse.Namespace) -> None:
         rng.bit_generator.state = state["numpy_rng"]
         torch.set_rng_state(state["torch_rng"])
         step, train_s, case_names = state["step"], state["train_seconds"], state["cases"]
+        history = list(state.get("history", []))
         log.info("resumed from %s at step %d (%.1f min trained)", ckpt_path, step, train_s / 60)
     known: dict[str, CaseData] = {}
     # the resumed run first sees exactly the cases it had, in the same order
@@ -229,7 +244,18 @@ def train(args: argparse.Namespace) -> None:
     signal.signal(signal.SIGTERM, stop)
     signal.signal(signal.SIGINT, stop)
 
+    session = {
+        "from_step": step,
+        "to_step": step,
+        "minutes": 0.0,
+        "cases": len(cases),
+        "bank_weight": args.bank_weight,
+        "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+    }
+    session_start_s = train_s
+
     def checkpoint() -> None:
+        session.update(to_step=step, minutes=(train_s - session_start_s) / 60.0, cases=len(cases))
         save_checkpoint(
             ckpt_path,
             {
@@ -246,6 +272,7 @@ def train(args: argparse.Namespace) -> None:
                 "batch_size": args.batch_size,
                 "threads": args.threads,
                 "saved_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+                "history": [*history, dict(session)],
             },
         )
         log.info("checkpoint saved at step %d", step)
@@ -261,7 +288,14 @@ def train(args: argparse.Namespace) -> None:
         lr = learning_rate(step, args.lr, args.total_steps)
         for group in opt.param_groups:
             group["lr"] = lr
-        b = sample_batch(cases, rng, batch_size=args.batch_size, crop=args.crop, channels=CHANNELS)
+        b = sample_batch(
+            cases,
+            rng,
+            batch_size=args.batch_size,
+            crop=args.crop,
+            channels=CHANNELS,
+            weights=case_weights(cases, args.bank_weight),
+        )
         targets = {
             "wmh": torch.from_numpy(b.wmh),
             "wmh_weight": torch.from_numpy(b.wmh_weight),
@@ -374,12 +408,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--batch-size", type=int, default=12)
     p.add_argument("--crop", type=int, default=160, help="crop size in pixels (multiple of 8)")
     p.add_argument("--lr", type=float, default=2e-3)
+    p.add_argument(
+        "--bank-weight", type=float, default=1.0, help="sampling weight of --bank cases vs others"
+    )
     p.add_argument("--seed", type=int, default=20261201)
     p.add_argument("--threads", type=int, default=2)
     p.add_argument("--checkpoint-minutes", type=float, default=3.0)
     p.add_argument("--log-every", type=int, default=20)
     p.add_argument("--rescan-every", type=int, default=200, help="steps between cache updates")
     p.add_argument("--eval-cases", type=int, default=6, help="held-out phantoms to score")
+    p.add_argument("--timing-slices", type=int, default=48, help="slices for the speed check")
     p.add_argument("--version", default="0.1.0", help="model version written to the manifest")
     return p
 
@@ -407,15 +445,20 @@ def main(argv: list[str] | None = None) -> int:
     if args.minutes > 0:
         train(args)
     if args.export:
+        validation = cached_validation_files(args.cache)
+        on_disk = [p for p in validation if p.name.startswith("val-bank-")]
+        # the threshold is best chosen on cases like the newest bank's, when there are enough
         export_and_check(
             args.out / CHECKPOINT,
             args.out,
-            validation=cached_validation_files(args.cache),
+            validation=on_disk if len(on_disk) >= 4 else validation,
             grid=GRID,
             norm=NORM,
             version=args.version,
             eval_cases=args.eval_cases,
             threads=args.threads,
+            cache=args.cache,
+            timing_slices=args.timing_slices,
         )
     return 0
 

@@ -102,15 +102,19 @@ def find_cases(root: Path) -> list[Path]:
     return sorted(p for p in root.iterdir() if p.is_dir() and is_case_ready(p))
 
 
-def case_seed(case_dir: Path) -> int | None:
-    """The generator seed recorded in a phantom's ``case.json`` (None for other cases)."""
+def case_facts(case_dir: Path) -> dict[str, Any]:
+    """The case folder's ``case.json`` as a dict (empty when absent or unreadable)."""
     path = case_dir / CASE_FILE
-    if not path.is_file():
-        return None
     try:
         facts = json.loads(path.read_text(encoding="utf-8"))
     except (OSError, ValueError):
-        return None
+        return {}
+    return facts if isinstance(facts, dict) else {}
+
+
+def case_seed(case_dir: Path) -> int | None:
+    """The generator seed recorded in a phantom's ``case.json`` (None for other cases)."""
+    facts = case_facts(case_dir)
     for key in ("seed", "params"):
         value = facts.get(key)
         if isinstance(value, int):
@@ -164,7 +168,9 @@ def cache_case(case_dir: Path, out: Path, grid: GridSpec, norm: Normalisation) -
     icv_path = case_dir / INTRACRANIAL_FILE
     intracranial = read_nifti(icv_path) if icv_path.is_file() else None
     arrays = case_arrays(image, reference, intracranial, grid, norm)
-    save_arrays(out, arrays, seed=case_seed(case_dir), source=str(case_dir.name))
+    version = case_facts(case_dir).get("generator_version")
+    source = f"generator {version}" if version else f"case folder {case_dir.name}"
+    save_arrays(out, arrays, seed=case_seed(case_dir), source=source)
 
 
 def save_arrays(out: Path, arrays: dict[str, np.ndarray], *, seed: int | None, source: str) -> None:
@@ -312,12 +318,19 @@ def sample_batch(
     crop: int,
     channels: int,
     do_augment: bool = True,
+    weights: np.ndarray | None = None,
 ) -> Batch:
-    """Draw ``batch_size`` augmented crops (crop x crop pixels) from randomly chosen cases."""
+    """Draw ``batch_size`` augmented crops (crop x crop pixels) from randomly chosen cases.
+
+    ``weights`` (one per case, summing to 1) makes some cases likelier; uniform when None.
+    """
     half = channels // 2
     xs, wmh, wmh_w, icv, icv_w = [], [], [], [], []
     for _ in range(batch_size):
-        case = cases[int(rng.integers(len(cases)))]
+        if weights is None:
+            case = cases[int(rng.integers(len(cases)))]
+        else:
+            case = cases[int(rng.choice(len(cases), p=weights))]
         k, on_lesion = _pick_slice(case, rng)
         y0, x0 = _crop_origin(case, k, on_lesion, crop, rng)
         ks = np.clip(np.arange(k - half, k + half + 1), 0, case.image.shape[0] - 1)

@@ -14,6 +14,7 @@ import math
 import platform
 import time
 import warnings
+from collections import Counter
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -358,11 +359,14 @@ ONNX graph (opset 17, input `image` N x 3 x 224 x 224, output `probabilities` N 
 batch axis dynamic). File size {facts["onnx_mb"]:.2f} MB.
 
 ## Training data: synthetic only
-- Physics-based FLAIR phantoms from flairwatch's own generator, version
-  `{facts["generator_version"]}` (brain anatomy derived from the ICBM152 2009 template; see the
+- Physics-based FLAIR phantoms from flairwatch's own generator (current version
+  `{facts["generator_version"]}`; brain anatomy derived from the ICBM152 2009 template, see the
   generator's copyright notice). No real patient data was used.
-- {facts["training_cases"]} training cases and {facts["validation_cases"]} validation cases
-  (phantom seeds ending in 0); the generator's held-out seeds were never used for training.
+- Training cases: {facts["training_sources"]}. Validation cases (phantom seeds ending in 0, used
+  for the threshold): {facts["validation_sources"]}. The generator's held-out seeds were never
+  used for training or validation.
+- Training sessions (resumed from the checkpoint each time):
+{facts["history"]}
 - Converted with flairwatch's own converter; trained on {facts["crop"]} x {facts["crop"]} crops
   with lesion-aware sampling (half lesion-bearing slices, the rest inside the head or anywhere,
   scalp included) and on-the-fly augmentation: left-right flip, in-plane blur (coarser
@@ -410,6 +414,18 @@ and is the figure to quote.
 """
 
 
+def describe_sources(files: Sequence[Path]) -> str:
+    """'N cases from generator V, ...' from the provenance stored in cached arrays."""
+    counts: Counter[str] = Counter()
+    for path in files:
+        try:
+            with np.load(path) as z:
+                counts[str(z["source"]) if "source" in z.files else "unknown source"] += 1
+        except OSError:
+            counts["missing from the cache"] += 1
+    return ", ".join(f"{n} from {src}" for src, n in sorted(counts.items())) or "none"
+
+
 def _generator_version() -> str:
     try:
         from flairwatch.phantom.params import GENERATOR_VERSION
@@ -428,6 +444,8 @@ def export_and_check(
     version: str,
     eval_cases: int,
     threads: int,
+    cache: Path,
+    timing_slices: int = 48,
 ) -> None:
     """Export ONNX, choose the threshold, write and verify the manifest, score held-out cases."""
     torch.set_num_threads(threads)
@@ -447,14 +465,18 @@ def export_and_check(
     got = predict(session, probe.numpy())
     if not np.allclose(got, expected, atol=1e-4):
         raise SystemExit(f"ONNX output differs from torch by {np.abs(got - expected).max():.2e}")
-    seconds = time_series(onnx_path, threads)
-    log.info("ONNX Runtime, %d threads, 48 slices: %.2f s (median of 3)", threads, seconds)
+    seconds = time_series(onnx_path, threads, slices=timing_slices)
+    log.info(
+        "ONNX Runtime, %d threads, %d slices: %.2f s (median of 3)", threads, timing_slices, seconds
+    )
     threshold, val = choose_threshold(session, validation, int(state["channels"]))
     log.info("threshold %.2f from %d validation cases: %s", threshold, len(validation), val)
     train_files = len(state["cases"])
+    train_sources = describe_sources([cache / f"{n}.npz" for n in state["cases"]])
+    val_sources = describe_sources(list(validation))
     training_data = (
-        f"synthetic FLAIR phantoms only (flairwatch generator {_generator_version()}); "
-        f"{train_files} training and {len(validation)} validation cases; no real patient data"
+        f"synthetic FLAIR phantoms only; training: {train_sources}; validation: {val_sources}; "
+        "no real patient data"
     )
     facts: dict[str, Any] = {
         "version": version,
@@ -463,6 +485,14 @@ def export_and_check(
         "onnx_mb": onnx_path.stat().st_size / 1e6,
         "generator_version": _generator_version(),
         "training_cases": train_files,
+        "training_sources": train_sources,
+        "validation_sources": val_sources,
+        "history": "\n".join(
+            f"  - steps {h['from_step']}-{h['to_step']}: {h['minutes']:.1f} min, "
+            f"{h['cases']} cases, bank weight {h['bank_weight']:g}, started {h['started']}"
+            for h in state.get("history", [])
+        )
+        or "  - (not recorded)",
         "validation_cases": len(validation),
         "crop": state["crop"],
         "batch_size": state["batch_size"],

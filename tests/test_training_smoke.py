@@ -82,7 +82,7 @@ def test_export_round_trip(cache: Path, tmp_path: Path) -> None:
     train_model, _ = _scripts()
     out = tmp_path / "model"
     _run(train_model, cache, out, "--minutes", "5", "--max-steps", "2")
-    _run(train_model, cache, out, "--export", "--eval-cases", "0")
+    _run(train_model, cache, out, "--export", "--eval-cases", "0", "--timing-slices", "8")
     manifest = load_manifest(out / "model.yaml")  # hash and schema, as the runtime checks them
     assert manifest.name == "wmh-synth" and manifest.version == "0.1.0"
     assert manifest.output_channels == ("wmh", "intracranial")
