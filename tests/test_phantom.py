@@ -240,3 +240,22 @@ def test_cli_registers_phantoms(tmp_path: Path) -> None:
     assert cli.run(args) == 0
     bad = parser.parse_args(["phantoms", "--out", str(tmp_path), "--workers", "0"])
     assert cli.run(bad) == 2
+
+
+def test_other_contrast_case_folder(tmp_path: Path, axial_case: PhantomCase) -> None:
+    write_case(
+        axial_case,
+        tmp_path / "t1",
+        patient_id="INV-004",
+        patient_name="Invented^Four",
+        contrast="t1",
+    )
+    write_case(axial_case, tmp_path / "fl", patient_id="INV-004", patient_name="Invented^Four")
+    t1 = pydicom.dcmread(next((tmp_path / "t1" / "image").glob("*.dcm")))
+    fl = pydicom.dcmread(next((tmp_path / "fl" / "image").glob("*.dcm")))
+    assert t1.ScanningSequence == "SE" and "InversionTime" not in t1
+    assert t1.SeriesDescription == "AX T1 SE"
+    assert t1.StudyInstanceUID == fl.StudyInstanceUID  # same seed, same study
+    assert t1.SeriesInstanceUID != fl.SeriesInstanceUID
+    assert t1.FrameOfReferenceUID == fl.FrameOfReferenceUID  # same grid, same frame
+    assert json.loads((tmp_path / "t1" / "case.json").read_text())["contrast"] == "t1"

@@ -186,6 +186,7 @@ def _render(
         * (1.0 + TEXTURE_AMPLITUDE * texture)
         * bias_field(int_shape, int_spacing, params.bias_strength, rng_for(seed, "bias"))
     )
+    image = _scanner_artefacts(image, params)
     image = upsample_inplane(image, f, (cols, rows))
     gain = params.signal_scale / tissue_signals(seq, params.relaxation_jitter)["wm"]
     noise_rng = rng_for(seed, f"noise-{seq.kind}-{seq.tr_ms}-{seq.te_ms}")
@@ -203,6 +204,24 @@ def _render(
     else:
         wmh = np.zeros(icv.shape, dtype=bool)
     return image_vol, Volume(wmh.astype(np.uint8), acq_aff), Volume(icv.astype(np.uint8), acq_aff)
+
+
+def _scanner_artefacts(
+    image: npt.NDArray[np.float32], params: PhantomParams
+) -> npt.NDArray[np.float32]:
+    """Slice-to-slice intensity jitter (2D: interleaved excitation, common practice) and a faint
+    motion ghost: a copy of the head shifted by half the field of view along the phase-encoding
+    axis (j, rows), as pulsation or motion produce (common practice). Axes (i, j, k)."""
+    acq = params.acquisition
+    rng = rng_for(params.seed, "artefacts")
+    out = image
+    if acq.kind == "2d_axial" and params.slice_jitter > 0:
+        factors = 1.0 + params.slice_jitter * rng.standard_normal(acq.n_slices)
+        out = out * factors.astype(np.float32)[None, None, :]
+    if params.ghosting > 0:
+        ghost = np.roll(out, out.shape[1] // 2, axis=1)
+        out = out + np.float32(params.ghosting) * ghost
+    return np.asarray(out, dtype=np.float32)
 
 
 def _intracranial(

@@ -86,7 +86,9 @@ class PhantomParams:
     of the log bias field; ``noise_level`` the Gaussian sigma relative to the WM signal;
     ``signal_scale`` the WM level in stored pixel units. ``head_scale`` scales the template
     head (about 1.45 L intracranial at 0.89); ``head_aspect`` stretches its x, y, z axes.
-    ``relaxation_jitter`` multiplies (WM T1, WM T2, GM T1, GM T2) of the tissue table. ``template_mm`` 2 uses a 2 mm
+    ``relaxation_jitter`` multiplies (WM T1, WM T2, GM T1, GM T2) of the tissue table.
+    ``slice_jitter`` is the SD of per-slice gain (2D only); ``ghosting`` the amplitude of a
+    half-FOV motion ghost along the phase-encoding (row) axis, relative to the image. ``template_mm`` 2 uses a 2 mm
     template (fast, for tests).
     """
 
@@ -108,6 +110,8 @@ class PhantomParams:
     noise_level: float
     signal_scale: float
     relaxation_jitter: tuple[float, float, float, float]
+    slice_jitter: float
+    ghosting: float
     acquisition: AcquisitionParams
     template_mm: int = 1
     generator_version: str = field(default=GENERATOR_VERSION)
@@ -215,5 +219,7 @@ def sample_params(
         noise_level=round(rng.uniform(0.02, 0.07), 4),
         signal_scale=round(rng.uniform(300.0, 700.0), 1),
         relaxation_jitter=_draw_jitter(rng),
+        slice_jitter=round(rng.uniform(0.0, 0.03), 4),
+        ghosting=round(rng.uniform(0.005, 0.04), 4) if rng.random() < 0.3 else 0.0,
         acquisition=_draw_acquisition(rng, kind, field_strength_t),
     )
