@@ -77,7 +77,7 @@ def render_signal(
     wm_sig = np.float32(sig["wm"])
     if cortex_patches > 0:
         patches = np.clip(smooth_noise(subj.gm.shape, 14.0 / vox, rng) - 0.6, 0.0, 1.2)
-        gm_term = subj.gm * (gm_sig * (1.0 + 0.35 * cortex_patches * patches))
+        gm_term = subj.gm * (gm_sig * (1.0 + 0.25 * cortex_patches * patches))
     else:
         gm_term = subj.gm * gm_sig
     out = gm_term + subj.wm * wm_sig + subj.csf * np.float32(sig["csf"])  # on subj.box
