@@ -95,6 +95,9 @@ def series_header(
         "ImagedNucleus": "1H",
         "InstitutionName": "Example Research Site",
         "StationName": "FW-SIM",
+        # Phase encoding along the rows' direction j (the ghost axis of the generator).
+        "InPlanePhaseEncodingDirection": "COL",
+        "NumberOfAverages": "1",
     }
     if contrast == "flair":
         header.update(
@@ -104,6 +107,7 @@ def series_header(
             RepetitionTime=format(acq.tr_ms, ".1f"),
             EchoTime=format(acq.te_ms, ".1f"),
             InversionTime=format(acq.ti_ms, ".1f"),
+            EchoTrainLength=16 if acq.kind == "2d_axial" else 160,
             FlipAngle="90",
         )
     else:
