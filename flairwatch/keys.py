@@ -26,7 +26,9 @@ def load_or_create_secret(state_dir: Path) -> bytes:
     except FileExistsError:
         data = path.read_bytes()
         if len(data) < 32:
-            raise OSError(f"installation secret {path} is damaged; restore it from backup") from None
+            raise OSError(
+                f"installation secret {path} is damaged; restore it from backup"
+            ) from None
         return data
     data = secrets.token_bytes(32)
     with os.fdopen(fd, "wb") as fh:
