@@ -257,6 +257,16 @@ class Engine:
     def model_version(self) -> str:
         return self.manifest.version
 
+    def analyse(self, volume: Volume) -> Analysis:
+        """:func:`analyse` with this engine's model and post-processing settings."""
+        return analyse(
+            volume,
+            self.segmenter,
+            threshold=self.threshold,
+            min_lesion_mm3=self.cfg.min_lesion_mm3,
+            connectivity=self.cfg.connectivity,
+        )
+
     def version_dir(
         self, results_root: Path, source: Source, *, secret: bytes, revision: int = 1
     ) -> Path:
@@ -299,13 +309,7 @@ class Engine:
         timings: dict[str, float] = {}
         with _timed(timings, "load"):
             volume = read()
-        analysis = analyse(
-            volume,
-            self.segmenter,
-            threshold=self.threshold,
-            min_lesion_mm3=self.cfg.min_lesion_mm3,
-            connectivity=self.cfg.connectivity,
-        )
+        analysis = self.analyse(volume)
         timings.update(analysis.timings_s)
 
         def fill(tmp: Path) -> dict[str, Any]:

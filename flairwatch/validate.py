@@ -39,7 +39,7 @@ from flairwatch.assemble import group_series
 from flairwatch.discover import discover
 from flairwatch.errors import ConfigInvalid, FlairwatchError, InputRejected
 from flairwatch.load import load_nifti, load_series
-from flairwatch.pipeline import Engine, analyse
+from flairwatch.pipeline import Engine
 from flairwatch.volume import Volume
 
 log = logging.getLogger(__name__)
@@ -289,13 +289,7 @@ def model_segment(engine: Engine) -> Segment:
 
     def run(volume: Volume) -> Segmentation:
         start = time.perf_counter()
-        a = analyse(
-            volume,
-            engine.segmenter,
-            threshold=engine.threshold,
-            min_lesion_mm3=engine.cfg.min_lesion_mm3,
-            connectivity=engine.cfg.connectivity,
-        )
+        a = engine.analyse(volume)
         return Segmentation(a.lesions.mask, a.intracranial, time.perf_counter() - start, a.warnings)
 
     return run
