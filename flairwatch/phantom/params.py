@@ -15,8 +15,9 @@ import numpy as np
 
 from flairwatch.phantom.physics import null_ti_ms, tissue_table
 
-# Bump when anything changes what a given PhantomParams renders to (frozen for training banks).
-GENERATOR_VERSION = "fw-phantom-1.0"
+# Bump when anything changes what a given PhantomParams renders to. 1.1 is frozen: the shipped
+# model is trained on it; held-out seeds are in bank.HELD_OUT_SEEDS.
+GENERATOR_VERSION = "fw-phantom-1.1"
 
 KINDS = ("2d_axial", "3d_sagittal")
 FIELD_STRENGTHS = (1.5, 3.0)
