@@ -187,11 +187,15 @@ class StopFlag:
         self.stop = True
 
 
-def case_weights(cases: list[CaseData], bank_weight: float) -> np.ndarray | None:
-    """Sampling weights: case folders built on disk (``bank-``) count ``bank_weight`` times."""
-    if bank_weight == 1.0:
+def case_weights(cases: list[CaseData], bank_share: float) -> np.ndarray | None:
+    """Sampling weights giving the ``--bank`` case folders (``bank-``) ``bank_share`` of draws.
+
+    None (uniform over cases) when ``bank_share`` is 0 or one of the two groups is empty.
+    """
+    in_bank = np.array([c.name.startswith("bank-") for c in cases])
+    if bank_share <= 0.0 or in_bank.all() or not in_bank.any():
         return None
-    w = np.array([bank_weight if c.name.startswith("bank-") else 1.0 for c in cases])
+    w = np.where(in_bank, bank_share / in_bank.sum(), (1.0 - bank_share) / (~in_bank).sum())
     return np.asarray(w / w.sum())
 
 
@@ -224,6 +228,17 @@ def train(args: argparse.Namespace) -> None:
         torch.set_rng_state(state["torch_rng"])
         step, train_s, case_names = state["step"], state["train_seconds"], state["cases"]
         history = list(state.get("history", []))
+        if not history and step > 0:  # a checkpoint from before sessions were recorded
+            history = [
+                {
+                    "from_step": 0,
+                    "to_step": step,
+                    "minutes": train_s / 60.0,
+                    "cases": len(case_names),
+                    "bank_share": 0.0,
+                    "started": "not recorded",
+                }
+            ]
         log.info("resumed from %s at step %d (%.1f min trained)", ckpt_path, step, train_s / 60)
     known: dict[str, CaseData] = {}
     # the resumed run first sees exactly the cases it had, in the same order
@@ -249,7 +264,7 @@ def train(args: argparse.Namespace) -> None:
         "to_step": step,
         "minutes": 0.0,
         "cases": len(cases),
-        "bank_weight": args.bank_weight,
+        "bank_share": args.bank_share,
         "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
     }
     session_start_s = train_s
@@ -294,7 +309,7 @@ def train(args: argparse.Namespace) -> None:
             batch_size=args.batch_size,
             crop=args.crop,
             channels=CHANNELS,
-            weights=case_weights(cases, args.bank_weight),
+            weights=case_weights(cases, args.bank_share),
         )
         targets = {
             "wmh": torch.from_numpy(b.wmh),
@@ -409,7 +424,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--crop", type=int, default=160, help="crop size in pixels (multiple of 8)")
     p.add_argument("--lr", type=float, default=2e-3)
     p.add_argument(
-        "--bank-weight", type=float, default=1.0, help="sampling weight of --bank cases vs others"
+        "--bank-share",
+        type=float,
+        default=0.0,
+        help="fraction of crops drawn from --bank cases (0: every case alike)",
     )
     p.add_argument("--seed", type=int, default=20261201)
     p.add_argument("--threads", type=int, default=2)

@@ -489,7 +489,8 @@ def export_and_check(
         "validation_sources": val_sources,
         "history": "\n".join(
             f"  - steps {h['from_step']}-{h['to_step']}: {h['minutes']:.1f} min, "
-            f"{h['cases']} cases, bank weight {h['bank_weight']:g}, started {h['started']}"
+            f"{h['cases']} cases, share of on-disk bank cases {h.get('bank_share', 0):g}, "
+            f"started {h['started']}"
             for h in state.get("history", [])
         )
         or "  - (not recorded)",
