@@ -187,15 +187,15 @@ class StopFlag:
         self.stop = True
 
 
-def case_weights(cases: list[CaseData], bank_share: float) -> np.ndarray | None:
-    """Sampling weights giving the ``--bank`` case folders (``bank-``) ``bank_share`` of draws.
+def case_weights(cases: list[CaseData], prefer: str, share: float) -> np.ndarray | None:
+    """Sampling weights giving cases whose name or source contains ``prefer`` ``share`` of draws.
 
-    None (uniform over cases) when ``bank_share`` is 0 or one of the two groups is empty.
+    None (uniform over cases) when ``prefer`` is empty, ``share`` is 0, or either group is empty.
     """
-    in_bank = np.array([c.name.startswith("bank-") for c in cases])
-    if bank_share <= 0.0 or in_bank.all() or not in_bank.any():
+    chosen = np.array([bool(prefer) and (prefer in c.name or prefer in c.source) for c in cases])
+    if share <= 0.0 or chosen.all() or not chosen.any():
         return None
-    w = np.where(in_bank, bank_share / in_bank.sum(), (1.0 - bank_share) / (~in_bank).sum())
+    w = np.where(chosen, share / chosen.sum(), (1.0 - share) / (~chosen).sum())
     return np.asarray(w / w.sum())
 
 
@@ -235,7 +235,8 @@ def train(args: argparse.Namespace) -> None:
                     "to_step": step,
                     "minutes": train_s / 60.0,
                     "cases": len(case_names),
-                    "bank_share": 0.0,
+                    "prefer": "",
+                    "prefer_share": 0.0,
                     "started": "not recorded",
                 }
             ]
@@ -264,7 +265,8 @@ def train(args: argparse.Namespace) -> None:
         "to_step": step,
         "minutes": 0.0,
         "cases": len(cases),
-        "bank_share": args.bank_share,
+        "prefer": args.prefer,
+        "prefer_share": args.prefer_share,
         "started": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
     }
     session_start_s = train_s
@@ -309,7 +311,7 @@ def train(args: argparse.Namespace) -> None:
             batch_size=args.batch_size,
             crop=args.crop,
             channels=CHANNELS,
-            weights=case_weights(cases, args.bank_share),
+            weights=case_weights(cases, args.prefer, args.prefer_share),
         )
         targets = {
             "wmh": torch.from_numpy(b.wmh),
@@ -357,6 +359,11 @@ def train(args: argparse.Namespace) -> None:
 
 
 # ------------------------------------------------------------------------------------------- CLI
+
+
+def _source(path: Path) -> str:
+    with np.load(path) as z:
+        return str(z["source"]) if "source" in z.files else ""
 
 
 def parse_seeds(text: str) -> list[int]:
@@ -424,10 +431,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--crop", type=int, default=160, help="crop size in pixels (multiple of 8)")
     p.add_argument("--lr", type=float, default=2e-3)
     p.add_argument(
-        "--bank-share",
-        type=float,
-        default=0.0,
-        help="fraction of crops drawn from --bank cases (0: every case alike)",
+        "--prefer",
+        default="",
+        help="cases whose name or source contains this text (e.g. a generator version) ...",
+    )
+    p.add_argument(
+        "--prefer-share", type=float, default=0.0, help="... get this fraction of the crops"
     )
     p.add_argument("--seed", type=int, default=20261201)
     p.add_argument("--threads", type=int, default=2)
@@ -464,12 +473,13 @@ def main(argv: list[str] | None = None) -> int:
         train(args)
     if args.export:
         validation = cached_validation_files(args.cache)
-        on_disk = [p for p in validation if p.name.startswith("val-bank-")]
-        # the threshold is best chosen on cases like the newest bank's, when there are enough
+        preferred = [p for p in validation if args.prefer and args.prefer in _source(p)]
+        # the threshold is best chosen on cases like those the final phase favoured
+        validation = preferred if len(preferred) >= 3 else validation
         export_and_check(
             args.out / CHECKPOINT,
             args.out,
-            validation=on_disk if len(on_disk) >= 4 else validation,
+            validation=validation,
             grid=GRID,
             norm=NORM,
             version=args.version,

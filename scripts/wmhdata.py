@@ -215,11 +215,13 @@ class CaseData:
     icv: np.ndarray  # (K, H, W) uint8 0/1, or 255 = unknown
     lesion_slices: np.ndarray  # indices of slices with WMH
     head_slices: np.ndarray  # indices of slices with any head signal
+    source: str = ""  # provenance, e.g. "generator fw-phantom-1.1"
 
 
 def load_cached(path: Path) -> CaseData:
     with np.load(path) as z:
         image, wmh, icv = z["image"], z["wmh"], z["icv"]
+        source = str(z["source"]) if "source" in z.files else ""
     per_slice_lesion = (wmh == 1).reshape(wmh.shape[0], -1).sum(axis=1)
     per_slice_head = (image > 0.2).reshape(image.shape[0], -1).sum(axis=1)
     return CaseData(
@@ -229,6 +231,7 @@ def load_cached(path: Path) -> CaseData:
         icv=icv,
         lesion_slices=np.flatnonzero(per_slice_lesion > 0),
         head_slices=np.flatnonzero(per_slice_head > 100),
+        source=source,
     )
 
 

@@ -414,6 +414,18 @@ and is the figure to quote.
 """
 
 
+def _session_line(h: dict[str, Any]) -> str:
+    how = (
+        f"{h['prefer_share']:.0%} of crops from cases of {h['prefer']}"
+        if h.get("prefer_share")
+        else "all cases drawn alike"
+    )
+    return (
+        f"  - steps {h['from_step']}-{h['to_step']}: {h['minutes']:.1f} min, {h['cases']} cases, "
+        f"{how}, started {h['started']}"
+    )
+
+
 def describe_sources(files: Sequence[Path]) -> str:
     """'N cases from generator V, ...' from the provenance stored in cached arrays."""
     counts: Counter[str] = Counter()
@@ -487,12 +499,7 @@ def export_and_check(
         "training_cases": train_files,
         "training_sources": train_sources,
         "validation_sources": val_sources,
-        "history": "\n".join(
-            f"  - steps {h['from_step']}-{h['to_step']}: {h['minutes']:.1f} min, "
-            f"{h['cases']} cases, share of on-disk bank cases {h.get('bank_share', 0):g}, "
-            f"started {h['started']}"
-            for h in state.get("history", [])
-        )
+        "history": "\n".join(_session_line(h) for h in state.get("history", []))
         or "  - (not recorded)",
         "validation_cases": len(validation),
         "crop": state["crop"],
