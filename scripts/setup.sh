@@ -8,5 +8,5 @@ PY="${PYTHON:-python3}"
 extras=$(IFS=,; echo "$*")
 spec="."
 [ -n "$extras" ] && spec=".[$extras]"
-.venv/bin/python -m pip install --quiet --upgrade pip
-.venv/bin/python -m pip install --quiet -e "$spec"
+.venv/bin/python -m pip install --quiet --retries 10 --timeout 60 --upgrade pip
+.venv/bin/python -m pip install --quiet --retries 10 --timeout 60 -e "$spec"
