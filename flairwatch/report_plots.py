@@ -40,7 +40,7 @@ def _canvas(title: str) -> tuple[Image.Image, ImageDraw.ImageDraw, Font, Font]:
     font, small = _fonts()
     draw.rectangle((0, 0, WIDTH, 26), fill=BANNER_RGB)
     draw.text((WIDTH / 2, 13), BANNER, fill="black", font=font, anchor="mm")
-    draw.text((WIDTH / 2, 48), title, fill="black", font=font, anchor="mm")
+    draw.text((WIDTH / 2, 44), title, fill="black", font=font, anchor="mm")
     return img, draw, font, small
 
 
@@ -109,7 +109,8 @@ def scatter_log_x(
             px = _scale(math.log10(x), lo_d, hi_d, x0, x1)
             py = _scale(min(max(y, lo_y), hi_y), lo_y, hi_y, y1, y0)
             _dot(draw, px, py, rgb)
-        lx, ly = x0 + 10, y1 - 18 - 18 * n
+        # legend in one row above the plot area, where it can never hide a point
+        lx, ly = x0 + 8 + 190 * n, TOP - 12
         _dot(draw, lx, ly, rgb)
         draw.text((lx + 10, ly), f"{name} (n={len(values)})", fill="black", font=small, anchor="lm")
     if not xs:
