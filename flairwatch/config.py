@@ -34,7 +34,7 @@ def cpus_available() -> int:
     """CPUs this process may use: affinity mask, further limited by a cgroup v2 CPU quota."""
     n = len(os.sched_getaffinity(0))
     try:
-        quota, period = Path("/sys/fs/cgroup/cpu.max").read_text().split()[:2]
+        quota, period = Path("/sys/fs/cgroup/cpu.max").read_text(encoding="utf-8").split()[:2]
         if quota != "max":
             n = min(n, max(1, int(float(quota) / float(period))))
     except (OSError, ValueError):

@@ -82,7 +82,7 @@ def check_local_disk(folder: Path, mountinfo: str | None = None) -> None:
     """Refuse a state folder on a network file system (raises ConfigInvalid)."""
     if mountinfo is None:
         try:
-            mountinfo = Path("/proc/self/mountinfo").read_text()
+            mountinfo = Path("/proc/self/mountinfo").read_text(encoding="utf-8")
         except OSError:
             return  # not Linux: nothing to check against
     fstype = mount_fstype(folder.resolve(), mountinfo)

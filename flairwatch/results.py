@@ -81,7 +81,9 @@ def build_version_folder(
     tmp.mkdir(mode=DIR_MODE)
     try:
         summary = fill(tmp)
-        (tmp / SUMMARY_FILE).write_text(json.dumps(summary, indent=2, sort_keys=True) + "\n")
+        (tmp / SUMMARY_FILE).write_text(
+            json.dumps(summary, indent=2, sort_keys=True) + "\n", encoding="utf-8"
+        )
         for item in tmp.iterdir():
             os.chmod(item, FILE_MODE)
             with open(item, "rb") as fh:

@@ -70,7 +70,7 @@ class Report:
 def current_rss_kb() -> int:
     """Resident set size of this process in KiB (Linux /proc; peak RSS elsewhere)."""
     try:
-        pages = int(Path("/proc/self/statm").read_text().split()[1])
+        pages = int(Path("/proc/self/statm").read_text(encoding="utf-8").split()[1])
         return pages * os.sysconf("SC_PAGE_SIZE") // 1024
     except (OSError, ValueError, IndexError):
         return int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)

@@ -94,13 +94,13 @@ def tree_rss_kb(pid: int) -> int:
     pids = [pid]
     try:
         for task in Path(f"/proc/{pid}/task").iterdir():
-            children = (task / "children").read_text().split()
+            children = (task / "children").read_text(encoding="utf-8").split()
             pids.extend(int(c) for c in children)
     except OSError:
         pass
     for p in pids:
         try:
-            for line in Path(f"/proc/{p}/status").read_text().splitlines():
+            for line in Path(f"/proc/{p}/status").read_text(encoding="utf-8").splitlines():
                 if line.startswith("VmRSS:"):
                     total += int(line.split()[1])
         except OSError:

@@ -172,7 +172,7 @@ def build_held_out(
     fn = quick_params if quick else held_out_params
     stamp = folder / FINGERPRINT_FILE
     current = generator_fingerprint()
-    made_by = stamp.read_text().strip() if stamp.is_file() else None
+    made_by = stamp.read_text(encoding="utf-8").strip() if stamp.is_file() else None
     if made_by not in (None, current):
         if keep:
             print(
@@ -184,16 +184,18 @@ def build_held_out(
         print(f"the generator source changed since {folder} was made: rebuilding it", flush=True)
         shutil.rmtree(folder)
     folder.mkdir(parents=True, exist_ok=True)
-    stamp.write_text(current + "\n")
+    stamp.write_text(current + "\n", encoding="utf-8")
     for seed in seeds:  # a folder made with other parameters (or generator) is rebuilt
         facts_path = folder / case_name(seed) / "case.json"
-        if facts_path.is_file() and not _matches(json.loads(facts_path.read_text()), fn(seed)):
+        if facts_path.is_file() and not _matches(
+            json.loads(facts_path.read_text(encoding="utf-8")), fn(seed)
+        ):
             print(f"rebuilding {facts_path.parent.name}: made with other parameters", flush=True)
             shutil.rmtree(facts_path.parent)
     done = make_bank(folder, seeds, workers=workers, progress=True, params_fn=fn)
     if generator_fingerprint() != current:
         # edited while this process ran (it kept the old code): mark the folder for a rebuild
-        stamp.write_text("changed-during-build\n")
+        stamp.write_text("changed-during-build\n", encoding="utf-8")
         print("WARNING: the generator source changed during the build; run again", flush=True)
     return done
 
@@ -258,7 +260,7 @@ def tune_baseline(
         "generator_source": generator_fingerprint(),
     }
     if cache.is_file():
-        saved = json.loads(cache.read_text())
+        saved = json.loads(cache.read_text(encoding="utf-8"))
         if saved.get("settings") == settings:
             return float(saved["k"])
     from flairwatch.phantom.bank import HELD_OUT_SEEDS, TRAINING_SEED_LIMIT
@@ -295,7 +297,8 @@ def tune_baseline(
                 "median_dice_by_k": {str(k): medians[k] for k in K_GRID},
             },
             indent=2,
-        )
+        ),
+        encoding="utf-8",
     )
     return best
 
@@ -500,7 +503,7 @@ def write_markdown(
         ]
     )
     path.parent.mkdir(parents=True, exist_ok=True)
-    path.write_text(text)
+    path.write_text(text, encoding="utf-8")
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -581,7 +584,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     if len(model) < MIN_CASES and not args.quick:
         print(f"FAIL  only {len(model)} cases scored; the gate needs {MIN_CASES}")
     stamp = heldout / FINGERPRINT_FILE
-    source = stamp.read_text().strip() if stamp.is_file() else "unknown"
+    source = stamp.read_text(encoding="utf-8").strip() if stamp.is_file() else "unknown"
     write_markdown(args.table, engine, k, verdicts, parts, len(model), GENERATOR_VERSION, source)
     document = validation_document(engine, model, failures, heldout)
     publish_folder(args.report, lambda tmp: write_report_files(tmp, model, failures, document))

@@ -130,7 +130,7 @@ def rerun(archive: Archive, entry: Entry, engine: Engine) -> Entry:
 def tiny_model_version(folder: Path, manifest: Path, version: str) -> Path:
     """A copy of the tiny model's manifest declaring another version (same ONNX file)."""
     folder.mkdir(parents=True, exist_ok=True)
-    raw = yaml.safe_load(manifest.read_text())
+    raw = yaml.safe_load(manifest.read_text(encoding="utf-8"))
     raw["version"] = version
     raw["file"] = str(manifest.parent / raw["file"])
     target = folder / "tiny.yaml"

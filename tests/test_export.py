@@ -68,13 +68,17 @@ def test_csv_rows_match_headers_masks_and_summaries(archive: Archive) -> None:
     assert header == list(EXPORT_COLUMNS)
     assert len(rows) == 3
     assert sorted(p.name for p in out.parent.iterdir()) == ["wmh.csv", "wmh.csv.RESEARCH_ONLY.txt"]
-    assert "RESEARCH USE ONLY" in (out.parent / "wmh.csv.RESEARCH_ONLY.txt").read_text()
+    assert "RESEARCH USE ONLY" in (out.parent / "wmh.csv.RESEARCH_ONLY.txt").read_text(
+        encoding="utf-8"
+    )
 
     by_key = {r["series_key"]: r for r in rows}
     assert set(by_key) == {e.series_key for e in archive.entries}
     for entry in archive.entries:
         row = by_key[entry.series_key]
-        summary = json.loads((entry.outcome.result_dir / "summary.json").read_text())
+        summary = json.loads(
+            (entry.outcome.result_dir / "summary.json").read_text(encoding="utf-8")
+        )
         # values written into the DICOM headers by tests/series_fixtures.py
         assert row["manufacturer"] == "Example Imaging"
         assert row["manufacturer_model"] == "FW Test Scanner"
@@ -168,7 +172,7 @@ def test_json_and_model_version_selection(
     def export(*extra: str) -> list[dict[str, Any]]:
         out = tmp_path / "out.json"
         assert main(["export", "--config", cfg, "--format", "json", "--out", str(out), *extra]) == 0
-        data: list[dict[str, Any]] = json.loads(out.read_text())
+        data: list[dict[str, Any]] = json.loads(out.read_text(encoding="utf-8"))
         return data
 
     current = export()

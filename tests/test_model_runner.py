@@ -15,14 +15,14 @@ from tests.model_fixtures import build_tiny_onnx, make_tiny_model
 
 
 def _edit(manifest: Path, **changes: object) -> Path:
-    raw = yaml.safe_load(manifest.read_text())
+    raw = yaml.safe_load(manifest.read_text(encoding="utf-8"))
     for dotted, value in changes.items():
         node = raw
         *parents, leaf = dotted.split("__")
         for p in parents:
             node = node[p]
         node[leaf] = value
-    manifest.write_text(yaml.safe_dump(raw))
+    manifest.write_text(yaml.safe_dump(raw), encoding="utf-8")
     return manifest
 
 

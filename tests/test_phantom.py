@@ -122,7 +122,7 @@ def test_dicom_header(tmp_path: Path, axial_case: PhantomCase) -> None:
     assert float(ds.SliceThickness) == 4.0 and float(ds.SpacingBetweenSlices) == pytest.approx(5.0)
     uids = {pydicom.dcmread(f, stop_before_pixels=True).SOPInstanceUID for f in files}
     assert len(uids) == len(files)
-    meta = json.loads((tmp_path / "c" / "case.json").read_text())
+    meta = json.loads((tmp_path / "c" / "case.json").read_text(encoding="utf-8"))
     assert meta["generator_version"] == GENERATOR_VERSION
     assert meta["truth"]["lesion_volume_ml"] == pytest.approx(axial_case.lesion_volume_ml, abs=1e-3)
 
@@ -261,4 +261,6 @@ def test_other_contrast_case_folder(tmp_path: Path, axial_case: PhantomCase) -> 
     assert t1.StudyInstanceUID == fl.StudyInstanceUID  # same seed, same study
     assert t1.SeriesInstanceUID != fl.SeriesInstanceUID
     assert t1.FrameOfReferenceUID == fl.FrameOfReferenceUID  # same grid, same frame
-    assert json.loads((tmp_path / "t1" / "case.json").read_text())["contrast"] == "t1"
+    assert (
+        json.loads((tmp_path / "t1" / "case.json").read_text(encoding="utf-8"))["contrast"] == "t1"
+    )

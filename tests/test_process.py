@@ -62,7 +62,7 @@ def test_flair_processed_other_series_skipped_junk_ignored(
             "RESEARCH_ONLY.txt",
         ]
     )
-    summary = json.loads((vdir / "summary.json").read_text())
+    summary = json.loads((vdir / "summary.json").read_text(encoding="utf-8"))
     assert summary["patient_name"] is None and "Participant" not in json.dumps(summary)
     assert "Participant" not in str(vdir) and "FW-0001" not in str(vdir)
 
@@ -87,7 +87,7 @@ def test_flair_processed_other_series_skipped_junk_ignored(
     assert summary["lesion_volume_ml"] == pytest.approx(truth.sum() * 3.0 / 1000, abs=1e-4)
     assert summary["lesion_count"] == 2
     assert summary["model"]["name"] == "tiny-threshold"
-    assert "RESEARCH USE ONLY" in (vdir / "RESEARCH_ONLY.txt").read_text()
+    assert "RESEARCH USE ONLY" in (vdir / "RESEARCH_ONLY.txt").read_text(encoding="utf-8")
 
 
 def test_second_run_adopts_and_changes_nothing(tmp_path: Path, tiny_model_manifest: Path) -> None:
@@ -160,5 +160,5 @@ def test_head_larger_than_the_model_view_is_warned_about(
         args = ["process", str(tmp_path / name), "--results", str(out)]
         assert main([*args, "--model", str(tiny_model_manifest)]) == 0
         (vdir,) = _version_dirs(out)
-        warnings = json.loads((vdir / "summary.json").read_text())["warnings"]
+        warnings = json.loads((vdir / "summary.json").read_text(encoding="utf-8"))["warnings"]
         assert any("edge of the model" in w for w in warnings) is expect, warnings

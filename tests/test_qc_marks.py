@@ -52,7 +52,7 @@ def _edited_mask(entry: Entry, target: Path, *, shift_mm: float = 0.0, value: in
 def _export_row(archive: Archive, tmp_path: Path) -> dict[str, str]:
     out = tmp_path / "export.csv"
     assert main(["export", "--config", str(archive.config_file), "--out", str(out)]) == 0
-    with open(out, newline="") as fh:
+    with open(out, encoding="utf-8", newline="") as fh:
         (row,) = list(csv.DictReader(fh))
     return row
 
@@ -199,9 +199,11 @@ def test_corrections_become_case_folders_that_validate_reads(
     assert np.array_equal(case.reference, expected)
     # the image holds the pixel values written into the DICOM files (tests/series_fixtures.py)
     assert np.array_equal(case.image.data, phantom_array(SeriesSpec()).astype(np.float32))
-    facts = json.loads((case_dir / "case.json").read_text())
+    facts = json.loads((case_dir / "case.json").read_text(encoding="utf-8"))
     assert facts["correction"]["note"] == "extra lesion"
-    assert "FW-0001" not in (case_dir / "case.json").read_text(), "no patient identifiers"
+    assert "FW-0001" not in (case_dir / "case.json").read_text(encoding="utf-8"), (
+        "no patient identifiers"
+    )
     # a second run with nothing new leaves the folder alone
     before = (case_dir / "image.nii.gz").stat().st_mtime_ns
     assert main(["qc", "cases", "--config", cfg, "--out", str(cases)]) == 0
@@ -211,7 +213,7 @@ def test_corrections_become_case_folders_that_validate_reads(
     rc = main(["validate", "--model", str(tiny_model_manifest), "--cases", str(cases),
                "--out", str(out)])  # fmt: skip
     assert rc == 0
-    with open(out / "cases.csv", newline="") as fh:
+    with open(out / "cases.csv", encoding="utf-8", newline="") as fh:
         (row,) = list(csv.DictReader(fh))
     assert row["case"] == entry.series_key
     # the model on the exported image gives back the automatic result: the image is faithful

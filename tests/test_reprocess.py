@@ -48,7 +48,7 @@ from tests.review_fixtures import NOW, Archive, make_archive
 def _model_v2(folder: Path) -> Path:
     """The tiny model on a coarser grid (1.6 mm), declared as version 0.0.2: masks move."""
     manifest = make_tiny_model(folder, grid_shape=(40, 40), spacing_mm=(1.6, 1.6))
-    raw = yaml.safe_load(manifest.read_text())
+    raw = yaml.safe_load(manifest.read_text(encoding="utf-8"))
     raw["version"] = "0.0.2"
     manifest.write_text(yaml.safe_dump(raw))
     return manifest
@@ -114,11 +114,13 @@ def test_reprocess_reruns_reports_and_resumes(
     assert sorted(v for _, v, _ in current) == ["0.0.2", "0.0.2"]
     for old, digest in zip(old_dirs, before, strict=True):
         assert _digest(old) == digest, "old version folders are kept untouched"
-        assert (old.parent / "current_version.txt").read_text().strip() == "tiny-threshold-0.0.2"
+        assert (old.parent / "current_version.txt").read_text(
+            encoding="utf-8"
+        ).strip() == "tiny-threshold-0.0.2"
 
     assert archive.cfg.results is not None
     (report,) = sorted((archive.cfg.results / "reports").iterdir())
-    with open(report / "changes.csv", newline="") as fh:
+    with open(report / "changes.csv", encoding="utf-8", newline="") as fh:
         rows = {r["series_key"]: r for r in csv.DictReader(fh)}
     assert set(rows) == {e.series_key for e in archive.entries}
     for entry, old in zip(archive.entries, old_dirs, strict=True):
@@ -136,11 +138,11 @@ def test_reprocess_reruns_reports_and_resumes(
         s26 = ndimage.generate_binary_structure(3, 3)
         assert int(row["old_lesions"]) == ndimage.label(a, structure=s26)[1]
         assert int(row["new_lesions"]) == ndimage.label(b, structure=s26)[1]
-    summary = json.loads((report / "summary.json").read_text())
+    summary = json.loads((report / "summary.json").read_text(encoding="utf-8"))
     assert summary["series"] == 2 and summary["flagged"] == sum(
         int(r["flagged"]) for r in rows.values()
     )
-    svg = (report / "report.html").read_text()
+    svg = (report / "report.html").read_text(encoding="utf-8")
     assert svg.count("<circle") == 2 and "RESEARCH USE ONLY" in svg
 
     # running it again queues nothing: every series is current with this model
@@ -153,7 +155,9 @@ def test_reprocess_reruns_reports_and_resumes(
     assert "2 series, 2 flagged" in capsys.readouterr().err
     newest = sorted((archive.cfg.results / "reports").iterdir())
     assert len(newest) == 2, "a second report never overwrites the first"
-    flagged = json.loads((newest[-1] / "summary.json").read_text())["flagged_series"]
+    flagged = json.loads((newest[-1] / "summary.json").read_text(encoding="utf-8"))[
+        "flagged_series"
+    ]
     assert len(flagged) == 2 and all("Dice" in f["reasons"] for f in flagged)
 
 

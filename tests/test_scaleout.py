@@ -26,7 +26,7 @@ pytest.importorskip("distributed", reason="needs the 'cluster' extra (dask[distr
 
 def _model_v2(folder: Path) -> Path:
     manifest = make_tiny_model(folder, grid_shape=(40, 40), spacing_mm=(1.6, 1.6))
-    raw = yaml.safe_load(manifest.read_text())
+    raw = yaml.safe_load(manifest.read_text(encoding="utf-8"))
     raw["version"] = "0.0.2"
     manifest.write_text(yaml.safe_dump(raw))
     return manifest
@@ -36,7 +36,7 @@ def _files(folder: Path) -> dict[str, bytes | dict[str, object]]:
     out: dict[str, bytes | dict[str, object]] = {}
     for p in sorted(folder.iterdir()):
         if p.name == "summary.json":
-            summary = json.loads(p.read_text())
+            summary = json.loads(p.read_text(encoding="utf-8"))
             summary.pop("timings_s")
             out[p.name] = summary
         else:
@@ -85,6 +85,6 @@ def test_cluster_rerun_matches_single_machine(
         assert got.is_relative_to(archive.cfg.results)
         assert got.relative_to(archive.cfg.results) == expected[series_uid].relative_to(reference)
         assert _files(got) == _files(expected[series_uid])
-        assert (got.parent / "current_version.txt").read_text().strip() == got.name
+        assert (got.parent / "current_version.txt").read_text(encoding="utf-8").strip() == got.name
     reports = list((archive.cfg.results / "reports").iterdir())
     assert len(reports) == 1 and (reports[0] / "changes.csv").is_file()

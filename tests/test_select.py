@@ -190,7 +190,7 @@ def test_default_yaml_matches_defaults() -> None:
 def test_config_example_select_block_matches_defaults() -> None:
     # config.example.yaml documents the defaults: its `select` block must be them
     example = Path(__file__).resolve().parent.parent / "config.example.yaml"
-    raw = yaml.safe_load(example.read_text())
+    raw = yaml.safe_load(example.read_text(encoding="utf-8"))
     assert rules_from_mapping(raw["select"]) == SelectRules()
 
 

@@ -88,7 +88,8 @@ def cases(tmp_path: Path) -> Path:
     assert truth.sum() == BLOB1_VOXELS + BLOB2_VOXELS  # the hand count above
     exact = dicom_case(root, "a-exact", truth, icv=True)
     (exact / "case.json").write_text(
-        json.dumps({"params": {"acquisition": {"kind": "2d_axial", "field_strength_t": 3.0}}})
+        json.dumps({"params": {"acquisition": {"kind": "2d_axial", "field_strength_t": 3.0}}}),
+        encoding="utf-8",
     )
     # reference moved one voxel along i: each row of a blob loses one voxel of overlap
     dicom_case(root, "b-shifted", np.roll(truth, 1, axis=0))
@@ -114,7 +115,7 @@ def test_validate_scores_cases_and_writes_report(
     assert rc == 0, printed
     assert "[1/4] a-exact" in printed and "[4/4] d-nifti" in printed
 
-    with open(out / "cases.csv", newline="") as fh:
+    with open(out / "cases.csv", encoding="utf-8", newline="") as fh:
         rows = {r["case"]: r for r in csv.DictReader(fh)}
     assert sorted(rows) == ["a-exact", "b-shifted", "c-ignore", "d-nifti"]
 
@@ -146,7 +147,7 @@ def test_validate_scores_cases_and_writes_report(
     assert float(nifti["dice"]) == 1.0
     assert float(nifti["reference_ml"]) == pytest.approx(86 * 2.0 / 1000, abs=1e-4)
 
-    summary = json.loads((out / "summary.json").read_text())
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
     assert summary["cases_scored"] == 4 and summary["cases_failed"] == 0
     assert summary["model"]["name"] == "tiny-threshold"
     assert "RESEARCH USE ONLY" in summary["notice"]
@@ -156,15 +157,15 @@ def test_validate_scores_cases_and_writes_report(
     assert summary["by_load_bin"]["0"]["median_dice"] is None
     assert summary["by_load_bin"]["<1"]["cases"] == 4
     assert set(summary["by_acquisition"]) == {"2d_axial", "unknown"}
-    assert "NaN" not in (out / "summary.json").read_text()
+    assert "NaN" not in (out / "summary.json").read_text(encoding="utf-8")
 
-    report = (out / "report.md").read_text()
+    report = (out / "report.md").read_text(encoding="utf-8")
     assert "RESEARCH USE ONLY" in report and "| <1 | 4 |" in report
     assert "| b-shifted | – | <1 | 0.26 | 0.26 | 0.721 | 1.0 | 2/2 | – |" in report
     for png in ("dice_vs_volume.png", "dice_by_load_bin.png"):
         with Image.open(out / png) as img:
             assert img.format == "PNG" and img.size[0] > 300
-    assert "RESEARCH USE ONLY" in (out / "RESEARCH_ONLY.txt").read_text()
+    assert "RESEARCH USE ONLY" in (out / "RESEARCH_ONLY.txt").read_text(encoding="utf-8")
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".report")]
 
 
@@ -185,16 +186,16 @@ def test_broken_case_exits_1_others_scored(
     assert "no wmh_reference.nii.gz" in errors[1]
 
     out = tmp_path / "validation-tiny-threshold-0.0.1"  # default: beside the cases folder
-    summary = json.loads((out / "summary.json").read_text())
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
     assert summary["cases_scored"] == 4 and summary["cases_failed"] == 2
     assert [f["case"] for f in summary["failures"]] == ["e-two-series", "f-no-reference"]
-    assert "e-two-series" in (out / "report.md").read_text()
+    assert "e-two-series" in (out / "report.md").read_text(encoding="utf-8")
 
     # a second run replaces the earlier output in place
     shutil.rmtree(cases / "e-two-series")
     shutil.rmtree(cases / "f-no-reference")
     assert main(["validate", "--cases", str(cases), "--model", str(tiny_model_manifest)]) == 0
-    assert json.loads((out / "summary.json").read_text())["cases_failed"] == 0
+    assert json.loads((out / "summary.json").read_text(encoding="utf-8"))["cases_failed"] == 0
 
 
 def test_refuses_unrelated_out_folder_and_missing_cases(
@@ -202,10 +203,10 @@ def test_refuses_unrelated_out_folder_and_missing_cases(
 ) -> None:
     precious = tmp_path / "precious"
     precious.mkdir()
-    (precious / "keep.txt").write_text("mine")
+    (precious / "keep.txt").write_text("mine", encoding="utf-8")
     model = ["--model", str(tiny_model_manifest)]
     assert main(["validate", "--cases", str(cases), "--out", str(precious), *model]) == 2
-    assert (precious / "keep.txt").read_text() == "mine"
+    assert (precious / "keep.txt").read_text(encoding="utf-8") == "mine"
     assert main(["validate", "--cases", str(cases), "--out", str(cases / "r"), *model]) == 2
     assert main(["validate", "--cases", str(tmp_path / "none"), *model]) == 2
     err = capsys.readouterr().err.strip().splitlines()

@@ -49,14 +49,14 @@ def test_slow_copy_is_not_processed_early(tmp_path: Path, tiny_model_manifest: P
         assert seen[-1] == ["settling"]
         wait_for(lambda: [s for _, s, *_ in jobs(tmp_path / "state")] == ["done"], 30, "done")
         (result,) = complete_results(tmp_path / "results")
-        summary = json.loads((result / "summary.json").read_text())
+        summary = json.loads((result / "summary.json").read_text(encoding="utf-8"))
         assert summary["series_instance_uid"] == str(dcmread(files[0]).SeriesInstanceUID)
         mask_hdr = (result / "wmh_mask.nii.gz").stat()
         assert mask_hdr.st_size > 0
         assert (result / "wmh_mask.nii.gz").stat().st_mode & 0o007 == 0  # not world-readable
     finally:
         assert stop(proc) == 0
-    log = (tmp_path / "daemon.log").read_text()
+    log = (tmp_path / "daemon.log").read_text(encoding="utf-8")
     assert "settled, 8 files" in log  # all eight instances went into the one result
 
 
@@ -79,7 +79,7 @@ def test_interleaved_series_and_a_late_instance(tmp_path: Path, tiny_model_manif
         )
         assert sorted(states(tmp_path / "state")) == sorted(uids)
         assert len(complete_results(tmp_path / "results")) == 3
-        assert (tmp_path / "daemon.log").read_text().count("settled, 12 files") == 3
+        assert (tmp_path / "daemon.log").read_text(encoding="utf-8").count("settled, 12 files") == 3
 
         # a late instance of series 0 after it was done: a new revision, nothing lost
         late = dcmread(staged[0][0])
@@ -109,4 +109,4 @@ def test_polling_mode_finds_files_by_rescan(tmp_path: Path, tiny_model_manifest:
         wait_for(lambda: list(states(tmp_path / "state").values()) == [["done"]], 30, "done")
     finally:
         assert stop(proc) == 0
-    assert "watcher" not in (tmp_path / "daemon.log").read_text()
+    assert "watcher" not in (tmp_path / "daemon.log").read_text(encoding="utf-8")

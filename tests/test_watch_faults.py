@@ -141,7 +141,11 @@ def test_watched_folder_recreated_is_watched_again(
     cfg = write_config(tmp_path, tiny_model_manifest, settle=1.0, rescan=600)
     proc = start_daemon(cfg, tmp_path / "daemon.log")
     try:
-        wait_for(lambda: "ready" in (tmp_path / "daemon.log").read_text(), 30, "daemon start")
+        wait_for(
+            lambda: "ready" in (tmp_path / "daemon.log").read_text(encoding="utf-8"),
+            30,
+            "daemon start",
+        )
         shutil.rmtree(tmp_path / "inbox")
         time.sleep(0.5)
         (tmp_path / "inbox").mkdir()
@@ -150,7 +154,7 @@ def test_watched_folder_recreated_is_watched_again(
         wait_for(lambda: states(tmp_path / "state") == {series_uid_of(files): ["done"]}, 30, "done")
     finally:
         assert stop(proc) == 0
-    assert "restarting it" in (tmp_path / "daemon.log").read_text()
+    assert "restarting it" in (tmp_path / "daemon.log").read_text(encoding="utf-8")
 
 
 @pytest.mark.filterwarnings("ignore:Invalid value for VR UI")  # the hostile UID, on purpose

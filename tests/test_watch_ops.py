@@ -57,7 +57,7 @@ def _cli(*args: str) -> subprocess.CompletedProcess[str]:
 
 
 def _log_has(path: Path, text: str) -> bool:
-    return path.exists() and text in path.read_text()
+    return path.exists() and text in path.read_text(encoding="utf-8")
 
 
 def test_first_signal_finishes_the_running_series(
@@ -70,7 +70,7 @@ def test_first_signal_finishes_the_running_series(
     wait_for(lambda: _log_has(log, "running (attempt 1)"), 30, "a running series", step=0.02)
     proc.send_signal(signal.SIGTERM)
     assert proc.wait(30) == 0
-    assert "finishing 1 running series" in log.read_text()
+    assert "finishing 1 running series" in log.read_text(encoding="utf-8")
     assert [st for _, st, *_ in jobs(tmp_path / "state")] == ["done"]
     assert len(complete_results(tmp_path / "results")) == 1
     status = _cli("status", "--config", str(cfg), "--json")
@@ -106,7 +106,7 @@ def test_second_signal_stops_at_once_and_restart_completes(
         assert stop(proc) == 0
     assert len(complete_results(tmp_path / "results")) == 2
     assert half_built(tmp_path / "results") == []
-    assert "were running when the daemon stopped; queued again" in log.read_text()
+    assert "were running when the daemon stopped; queued again" in log.read_text(encoding="utf-8")
 
 
 def test_interrupted_one_shot_exits_130(tmp_path: Path, tiny_model_manifest: Path) -> None:
@@ -325,6 +325,10 @@ def test_worker_killed_mid_series_is_retried(tmp_path: Path, tiny_model_manifest
         db.close()
         assert (state, attempts) == ("queued", 1) and "exit code -9" in error
         # a fresh worker took the dead one's place
-        wait_for(lambda: log.read_text().count("worker 0 died") == 1, 10, "the death notice")
+        wait_for(
+            lambda: log.read_text(encoding="utf-8").count("worker 0 died") == 1,
+            10,
+            "the death notice",
+        )
     finally:
         assert stop(proc) == 0
