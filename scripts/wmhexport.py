@@ -27,6 +27,7 @@ from wmhnet import WithSigmoid, WmhNet
 from flairwatch import convert, metrics
 from flairwatch.infer import Segmenter
 from flairwatch.manifest import GridSpec, Normalisation, file_sha256, load_manifest
+from flairwatch.pipeline import analyse
 
 log = logging.getLogger("train_model")
 
@@ -193,43 +194,11 @@ def write_manifest(
 
 def _analyse(volume: Any, segmenter: Segmenter, threshold: float) -> tuple[np.ndarray, np.ndarray]:
     """WMH mask and intracranial mask on the series grid, through the runtime path."""
-    try:
-        from flairwatch.pipeline import analyse
-    except ImportError:  # pipeline's own imports not all landed yet: same steps, by hand
-        return _analyse_by_hand(volume, segmenter, threshold)
     result = analyse(
         volume, segmenter, threshold=threshold, min_lesion_mm3=MIN_LESION_MM3, connectivity=26
     )
     icv = result.intracranial if result.intracranial is not None else np.zeros(volume.shape)
     return np.asarray(result.lesions.mask), np.asarray(icv)
-
-
-def _analyse_by_hand(
-    volume: Any, segmenter: Segmenter, threshold: float
-) -> tuple[np.ndarray, np.ndarray]:
-    from scipy import ndimage
-
-    from flairwatch.postprocess import threshold_and_clean
-
-    m = segmenter.manifest
-    x, gmap = convert.to_model_input(volume, m.grid, m.normalisation, m.channels)
-    probs = segmenter.predict(x)
-    wmh = convert.resample_to_series(probs[:, 0], gmap)
-    icv_raw = convert.resample_to_series(probs[:, 1], gmap) >= 0.5
-    labels, n = ndimage.label(icv_raw, structure=np.ones((3, 3, 3), dtype=bool))
-    icv = np.zeros(icv_raw.shape, dtype=np.uint8)
-    if n:
-        largest = labels == (int(np.argmax(np.bincount(labels.ravel())[1:])) + 1)
-        icv = np.asarray(ndimage.binary_fill_holes(largest), dtype=np.uint8)
-    result = threshold_and_clean(
-        wmh,
-        volume.affine_lps,
-        threshold=threshold,
-        min_lesion_mm3=MIN_LESION_MM3,
-        connectivity=26,
-        restrict_to=icv,
-    )
-    return np.asarray(result.mask), icv
 
 
 def choose_threshold_series(
