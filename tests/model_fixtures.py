@@ -57,6 +57,7 @@ def make_tiny_model(
     spacing_mm: tuple[float, float] = (1.0, 1.0),
     channels: int = 3,
     threshold: float = 0.5,
+    version: str = "0.0.1",
 ) -> Path:
     """Write ``tiny.onnx`` and its manifest ``tiny.yaml`` into ``folder``; return the manifest path."""
     folder.mkdir(parents=True, exist_ok=True)
@@ -64,7 +65,7 @@ def make_tiny_model(
     build_tiny_onnx(onnx_path, channels=channels)
     manifest = {
         "name": "tiny-threshold",
-        "version": "0.0.1",
+        "version": version,
         "file": onnx_path.name,
         "sha256": hashlib.sha256(onnx_path.read_bytes()).hexdigest(),
         "intended_use": "research only (test fixture)",

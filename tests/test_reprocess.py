@@ -22,7 +22,6 @@ import nibabel as nib
 import numpy as np
 import pytest
 import SimpleITK as sitk
-import yaml
 from scipy import ndimage
 
 from flairwatch.change_report import Limits, compare_masks, flag_reasons, svg_scatter
@@ -43,15 +42,6 @@ from flairwatch.reprocess import (
 )
 from tests.model_fixtures import make_tiny_model
 from tests.review_fixtures import NOW, Archive, make_archive
-
-
-def _model_v2(folder: Path) -> Path:
-    """The tiny model on a coarser grid (1.6 mm), declared as version 0.0.2: masks move."""
-    manifest = make_tiny_model(folder, grid_shape=(40, 40), spacing_mm=(1.6, 1.6))
-    raw = yaml.safe_load(manifest.read_text(encoding="utf-8"))
-    raw["version"] = "0.0.2"
-    manifest.write_text(yaml.safe_dump(raw))
-    return manifest
 
 
 @pytest.fixture
@@ -94,7 +84,9 @@ def _digest(folder: Path) -> dict[str, str]:
 def test_reprocess_reruns_reports_and_resumes(
     archive: Archive, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    v2 = _model_v2(tmp_path / "v2")
+    v2 = make_tiny_model(
+        tmp_path / "v2", grid_shape=(40, 40), spacing_mm=(1.6, 1.6), version="0.0.2"
+    )
     old_dirs = [e.outcome.result_dir for e in archive.entries]
     before = [_digest(d) for d in old_dirs]
     cfg = str(archive.config_file)

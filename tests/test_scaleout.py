@@ -11,7 +11,6 @@ import json
 from pathlib import Path
 
 import pytest
-import yaml
 
 from flairwatch.assemble import group_series
 from flairwatch.cli import main
@@ -22,14 +21,6 @@ from tests.model_fixtures import make_tiny_model
 from tests.review_fixtures import Archive, make_archive
 
 pytest.importorskip("distributed", reason="needs the 'cluster' extra (dask[distributed])")
-
-
-def _model_v2(folder: Path) -> Path:
-    manifest = make_tiny_model(folder, grid_shape=(40, 40), spacing_mm=(1.6, 1.6))
-    raw = yaml.safe_load(manifest.read_text(encoding="utf-8"))
-    raw["version"] = "0.0.2"
-    manifest.write_text(yaml.safe_dump(raw))
-    return manifest
 
 
 def _files(folder: Path) -> dict[str, bytes | dict[str, object]]:
@@ -56,7 +47,9 @@ def archive(tmp_path: Path, tiny_model_manifest: Path) -> Archive:
 def test_cluster_rerun_matches_single_machine(
     archive: Archive, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    v2 = _model_v2(tmp_path / "v2")
+    v2 = make_tiny_model(
+        tmp_path / "v2", grid_shape=(40, 40), spacing_mm=(1.6, 1.6), version="0.0.2"
+    )
     # the single-machine reference, into its own results folder
     engine = Engine(archive.cfg, manifest=load_manifest(v2))
     reference = tmp_path / "reference"
