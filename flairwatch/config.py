@@ -14,7 +14,7 @@ from typing import Any
 import yaml
 
 from flairwatch.errors import ConfigInvalid
-from flairwatch.select import SelectRules, rules_from_mapping
+from flairwatch.intake.select import SelectRules, rules_from_mapping
 
 IDENTIFIER_FIELDS = ("patient_id", "patient_name", "dates")
 IDENTIFIER_ACTIONS = ("keep", "pseudonymise", "drop")

@@ -9,7 +9,7 @@ The series is a phantom from the generator (2D axial, 256 x 256 pixels of 0.9 mm
 3 mm, a 6 mL lesion load), generated in memory once; ``--synthetic`` uses a plain numpy
 ellipsoid head with bright blobs instead (no brain template needed). The model session is built
 once (as a worker does), one untimed warm-up run follows, then ``--runs`` timed runs of
-:func:`flairwatch.pipeline.analyse`: the median of each stage (to_model_grid, infer,
+:func:`flairwatch.engine.pipeline.analyse`: the median of each stage (to_model_grid, infer,
 to_series_grid, post_process) and of the total are printed.
 
 Timings depend on the machine and on what else runs on it, so a reference workload is timed in
@@ -42,7 +42,7 @@ REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
 from flairwatch.config import Config, default_model_manifest  # noqa: E402
-from flairwatch.pipeline import Engine, analyse  # noqa: E402
+from flairwatch.engine.pipeline import Engine, analyse  # noqa: E402
 from flairwatch.volume import Volume  # noqa: E402
 
 SHAPE = (256, 256, 48)  # (i, j, k): columns, rows, slices

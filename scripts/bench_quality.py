@@ -32,7 +32,7 @@ Gate (issue 3, item 6), over the held-out cases
     4. false-positive volume <= 0.5 mL on every lesion-free case (the largest is checked);
     5. median intracranial-mask Dice >= 0.95 (the smallest is printed too);
     6. median Dice at least 0.10 above the baseline's, over cases with >= 1 mL.
-    Figures follow flairwatch.metrics (2019 IEEE TMI WMH segmentation challenge definitions).
+    Figures follow flairwatch.research.metrics (2019 IEEE TMI WMH segmentation challenge definitions).
 
 Prints tables by load bin and acquisition, PASS/FAIL per criterion, and writes the Markdown
 tables to ``work/quality_table.md`` (for the model card and README) plus the model's full
@@ -59,13 +59,13 @@ import numpy as np
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from flairwatch import metrics  # noqa: E402
 from flairwatch.config import Config, default_model_manifest  # noqa: E402
+from flairwatch.engine.pipeline import Engine  # noqa: E402
+from flairwatch.engine.postprocess import threshold_and_clean  # noqa: E402
 from flairwatch.phantom.params import GENERATOR_VERSION, PhantomParams, sample_params  # noqa: E402
-from flairwatch.pipeline import Engine  # noqa: E402
-from flairwatch.postprocess import threshold_and_clean  # noqa: E402
-from flairwatch.report_plots import markdown_table  # noqa: E402
-from flairwatch.validate import (  # noqa: E402
+from flairwatch.research import metrics  # noqa: E402
+from flairwatch.research.report_plots import markdown_table  # noqa: E402
+from flairwatch.research.validate import (  # noqa: E402
     CaseResult,
     Segment,
     Segmentation,
@@ -553,7 +553,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 0
 
     from flairwatch.phantom.bank import case_name
-    from flairwatch.validate_report import publish_folder, validation_document, write_report_files
+    from flairwatch.research.validate_report import (
+        publish_folder,
+        validation_document,
+        write_report_files,
+    )
 
     engine = Engine(cfg)
     from flairwatch.phantom.bank import HELD_OUT_SEEDS

@@ -18,8 +18,8 @@ import pydicom
 from pydicom.dataset import Dataset, FileMetaDataset
 from pydicom.uid import UID, ExplicitVRLittleEndian, MRImageStorage, generate_uid
 
-from flairwatch.assemble import group_series
-from flairwatch.discover import discover
+from flairwatch.intake.assemble import group_series
+from flairwatch.intake.discover import discover
 from flairwatch.records import Series
 
 PYDICOM_FILES = Path(pydicom.__file__).parent / "data" / "test_files"

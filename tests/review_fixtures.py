@@ -1,7 +1,7 @@
 """A small processed archive for the review commands: real DICOM, real results, a real ledger.
 
 Series are written with :func:`tests.series_fixtures.write_series`, processed by the real
-:class:`flairwatch.pipeline.Engine` with the tiny ONNX model, and recorded through the ledger's
+:class:`flairwatch.engine.pipeline.Engine` with the tiny ONNX model, and recorded through the ledger's
 own API in the order the daemon uses (new revision -> queued -> claimed -> done).
 """
 
@@ -15,11 +15,11 @@ import yaml
 from pydicom.uid import generate_uid
 
 from flairwatch import keys
-from flairwatch.assemble import group_series
 from flairwatch.config import Config, load_config
-from flairwatch.discover import read_record
-from flairwatch.ledger import FileRow, JobState, Ledger
-from flairwatch.pipeline import Engine, Outcome
+from flairwatch.engine.pipeline import Engine, Outcome
+from flairwatch.intake.assemble import group_series
+from flairwatch.intake.discover import read_record
+from flairwatch.ledger.store import FileRow, JobState, Ledger
 from flairwatch.records import Series
 from tests.series_fixtures import SeriesSpec, write_series
 

@@ -7,8 +7,8 @@ import shutil
 from dataclasses import replace
 from pathlib import Path
 
-from flairwatch.assemble import group_series
-from flairwatch.discover import discover, read_record
+from flairwatch.intake.assemble import group_series
+from flairwatch.intake.discover import discover, read_record
 from flairwatch.records import FileRecord, SeriesHeader
 from tests.dicom_fixtures import DICOMDIR_TESTS
 

@@ -7,8 +7,8 @@ import pytest
 import SimpleITK as sitk
 from nibabel.orientations import aff2axcodes, inv_ornt_aff
 
-from flairwatch import convert
-from flairwatch.manifest import GridSpec, Normalisation
+from flairwatch.engine import convert
+from flairwatch.engine.manifest import GridSpec, Normalisation
 from flairwatch.volume import Volume, lps_to_ras
 
 

@@ -12,8 +12,8 @@ import pytest
 from pydicom.dataset import Dataset, FileMetaDataset
 from pydicom.uid import BasicTextSRStorage, ExplicitVRLittleEndian, generate_uid
 
-from flairwatch.discover import discover, is_ignored_name, iter_candidate_files, read_record
 from flairwatch.errors import InputRejected
+from flairwatch.intake.discover import discover, is_ignored_name, iter_candidate_files, read_record
 from tests.dicom_fixtures import DICOMDIR_TESTS, PYDICOM_FILES, read_mprage, slice_dataset
 
 
@@ -113,7 +113,7 @@ def test_read_record_enhanced_mr_header() -> None:
     # nibabel's philips_mprage: enhanced MR, 176 frames of 256x256, 1 mm pixels held in the
     # functional groups, 3D acquisition, gradient echo (values read from the file's groups).
     ds = read_mprage()
-    from flairwatch.discover import header_from_dataset
+    from flairwatch.intake.discover import header_from_dataset
 
     h = header_from_dataset(ds)
     assert (h.number_of_frames, h.rows, h.columns) == (176, 256, 256)

@@ -26,9 +26,9 @@ from scipy import ndimage
 
 from flairwatch.cli import main
 from flairwatch.config import Identifiers
-from flairwatch.export import EXPORT_COLUMNS, identifier, iso_date, mark_primary
-from flairwatch.manifest import load_manifest
-from flairwatch.pipeline import Engine
+from flairwatch.engine.manifest import load_manifest
+from flairwatch.engine.pipeline import Engine
+from flairwatch.research.export import EXPORT_COLUMNS, identifier, iso_date, mark_primary
 from tests.review_fixtures import Archive, make_archive, rerun, tiny_model_version
 from tests.series_fixtures import SeriesSpec
 

@@ -19,7 +19,7 @@ import pytest
 from PIL import Image
 
 from flairwatch.cli import main
-from flairwatch.gallery import refresh_study
+from flairwatch.research.gallery import refresh_study
 from tests.review_fixtures import Archive, make_archive
 
 CHROMIUM = shutil.which("chromium") or ("/usr/bin/chromium" if Path("/usr/bin/chromium").exists() else None)  # fmt: skip

@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 
 from flairwatch.errors import ConfigInvalid
-from flairwatch.ledger import (
+from flairwatch.ledger.store import (
     LEDGER_FILE,
     FileRow,
     JobState,

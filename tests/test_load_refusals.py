@@ -17,9 +17,9 @@ from pydicom.uid import (
     generate_uid,
 )
 
-import flairwatch.load
+import flairwatch.intake.load
 from flairwatch.errors import InputRejected
-from flairwatch.load import load_series, series_label, stack_geometry, volume_from_datasets
+from flairwatch.intake.load import load_series, series_label, stack_geometry, volume_from_datasets
 from flairwatch.records import FileRecord, Series, SeriesHeader
 from tests.dicom_fixtures import (
     DICOMDIR_TESTS,
@@ -128,7 +128,7 @@ def test_missing_decoder_names_syntax_and_package(monkeypatch: pytest.MonkeyPatc
     class Unavailable:
         is_available = False
 
-    monkeypatch.setattr(flairwatch.load, "get_decoder", lambda uid: Unavailable())
+    monkeypatch.setattr(flairwatch.intake.load, "get_decoder", lambda uid: Unavailable())
     ds = read_pydicom_file("MR_small_jp2klossless.dcm")
     with pytest.raises(InputRejected) as info:
         volume_from_datasets([ds, shifted_copy(ds, 0.8)], "series y")

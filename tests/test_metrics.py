@@ -18,7 +18,7 @@ from scipy import ndimage
 from scipy.spatial import cKDTree
 
 from flairwatch.errors import InputRejected
-from flairwatch.metrics import (
+from flairwatch.research.metrics import (
     LOAD_BIN_NAMES,
     CaseScores,
     dice,

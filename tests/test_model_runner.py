@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 import yaml
 
+from flairwatch.engine.infer import Segmenter
+from flairwatch.engine.manifest import load_manifest
 from flairwatch.errors import ModelInvalid
-from flairwatch.infer import Segmenter
-from flairwatch.manifest import load_manifest
 from tests.model_fixtures import build_tiny_onnx, make_tiny_model
 
 

@@ -14,14 +14,14 @@ import pytest
 import SimpleITK as sitk
 from scipy import ndimage
 
-from flairwatch.errors import ConfigInvalid, StageFailed
-from flairwatch.postprocess import (
+from flairwatch.engine.postprocess import (
     LESION_COLUMNS,
     connected_components,
     lesion_rows,
     threshold_and_clean,
     voxel_volume_mm3,
 )
+from flairwatch.errors import ConfigInvalid, StageFailed
 from flairwatch.volume import Volume
 
 EYE = np.eye(4)

@@ -19,8 +19,8 @@ from nibabel.orientations import aff2axcodes
 from PIL import Image
 from scipy import ndimage
 
-from flairwatch import qc_image
-from flairwatch.qc_image import (
+from flairwatch.engine import qc_image
+from flairwatch.engine.qc_image import (
     BANNER_PX,
     BANNER_RGB,
     BANNER_TEXT_RGB,

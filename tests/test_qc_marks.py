@@ -20,9 +20,9 @@ import pytest
 import SimpleITK as sitk
 
 from flairwatch.cli import main
-from flairwatch.manifest import load_manifest
-from flairwatch.pipeline import Engine
-from flairwatch.qc_marks import measure_mask
+from flairwatch.engine.manifest import load_manifest
+from flairwatch.engine.pipeline import Engine
+from flairwatch.research.qc_marks import measure_mask
 from tests.review_fixtures import Archive, Entry, make_archive, rerun, tiny_model_version
 from tests.series_fixtures import SeriesSpec, phantom_array
 
@@ -182,7 +182,7 @@ def test_measure_mask_against_simpleitk(connectivity: int, fully: bool) -> None:
 def test_corrections_become_case_folders_that_validate_reads(
     archive: Archive, tmp_path: Path, tiny_model_manifest: Path
 ) -> None:
-    from flairwatch.validate import read_case
+    from flairwatch.research.validate import read_case
 
     entry = archive.entries[0]
     edited = _edited_mask(entry, tmp_path / "edited.nii.gz")

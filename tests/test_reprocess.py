@@ -24,10 +24,10 @@ import pytest
 import SimpleITK as sitk
 from scipy import ndimage
 
-from flairwatch.change_report import Limits, compare_masks, flag_reasons, svg_scatter
 from flairwatch.cli import main
-from flairwatch.ledger import JobState, Ledger
-from flairwatch.reprocess import (
+from flairwatch.ledger.store import JobState, Ledger
+from flairwatch.research.change_report import Limits, compare_masks, flag_reasons, svg_scatter
+from flairwatch.research.reprocess import (
     HEARTBEAT_FRESH_SECONDS,
     REPROCESS_PRIORITY,
     Candidate,

@@ -10,7 +10,8 @@ from pathlib import Path
 
 import pytest
 
-from flairwatch import keys, results
+from flairwatch import keys
+from flairwatch.engine import results
 
 
 def _fill(tmp: Path) -> dict[str, object]:

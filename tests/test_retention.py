@@ -13,10 +13,10 @@ import numpy as np
 import pytest
 
 from flairwatch.cli import main
-from flairwatch.manifest import load_manifest
-from flairwatch.pipeline import Engine
-from flairwatch.retention import plan_prune, prune_versions
-from flairwatch.review_queries import ResultRecord, results_of_series
+from flairwatch.engine.manifest import load_manifest
+from flairwatch.engine.pipeline import Engine
+from flairwatch.ledger.queries import ResultRecord, results_of_series
+from flairwatch.research.retention import plan_prune, prune_versions
 from tests.review_fixtures import make_archive, rerun, tiny_model_version
 
 

@@ -1,6 +1,6 @@
 """Re-runs on a local Dask cluster of worker processes give the same result folders as one machine.
 
-Oracle: the single-machine :class:`flairwatch.pipeline.Engine` run of the same series with the
+Oracle: the single-machine :class:`flairwatch.engine.pipeline.Engine` run of the same series with the
 same model into a separate results folder; files are compared byte for byte (the summary
 without its timings). The ledger is read back with its own query API.
 """
@@ -12,11 +12,11 @@ from pathlib import Path
 
 import pytest
 
-from flairwatch.assemble import group_series
 from flairwatch.cli import main
-from flairwatch.discover import read_record
-from flairwatch.manifest import load_manifest
-from flairwatch.pipeline import Engine
+from flairwatch.engine.manifest import load_manifest
+from flairwatch.engine.pipeline import Engine
+from flairwatch.intake.assemble import group_series
+from flairwatch.intake.discover import read_record
 from tests.model_fixtures import make_tiny_model
 from tests.review_fixtures import Archive, make_archive
 

@@ -9,15 +9,15 @@ from typing import Any
 import pytest
 import yaml
 
-from flairwatch.discover import read_record
 from flairwatch.errors import ConfigInvalid
-from flairwatch.records import SeriesHeader
-from flairwatch.select import (
+from flairwatch.intake.discover import read_record
+from flairwatch.intake.select import (
     DEFAULT_RULES_YAML,
     SelectRules,
     rules_from_mapping,
     select_series,
 )
+from flairwatch.records import SeriesHeader
 from tests.dicom_fixtures import DICOMDIR_TESTS, PYDICOM_FILES
 
 BASE = SeriesHeader(

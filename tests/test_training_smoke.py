@@ -7,8 +7,6 @@ own loader and runner, which the runtime uses.
 
 from __future__ import annotations
 
-import importlib
-import sys
 from pathlib import Path
 from types import ModuleType
 
@@ -18,17 +16,16 @@ import pytest
 torch = pytest.importorskip("torch")
 pytest.importorskip("onnx")
 
-from flairwatch.infer import Segmenter  # noqa: E402
-from flairwatch.manifest import load_manifest  # noqa: E402
+from flairwatch.engine.infer import Segmenter  # noqa: E402
+from flairwatch.engine.manifest import load_manifest  # noqa: E402
 
-SCRIPTS = Path(__file__).resolve().parents[1] / "scripts"
 TINY = ["--widths", "4", "8", "8", "16", "--batch-size", "2", "--crop", "64", "--threads", "1"]
 
 
 def _scripts() -> tuple[ModuleType, ModuleType]:
-    if str(SCRIPTS) not in sys.path:
-        sys.path.insert(0, str(SCRIPTS))
-    return importlib.import_module("train_model"), importlib.import_module("wmhdata")
+    from flairwatch.training import data, loop
+
+    return loop, data
 
 
 def _fake_case(rng: np.random.Generator, k: int = 5) -> dict[str, np.ndarray]:

@@ -19,10 +19,10 @@ import pytest
 from PIL import Image
 from scipy import ndimage
 
-from flairwatch import metrics
 from flairwatch.cli import main
 from flairwatch.errors import InputRejected
-from flairwatch.validate import case_facts, read_case
+from flairwatch.research import metrics
+from flairwatch.research.validate import case_facts, read_case
 from flairwatch.volume import Volume
 from tests.series_fixtures import SeriesSpec, phantom_array, write_series
 

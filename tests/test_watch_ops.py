@@ -18,14 +18,14 @@ from pathlib import Path
 import pytest
 
 from flairwatch.config import Config
+from flairwatch.daemon.inbox import Known, Step, plan, signature
+from flairwatch.daemon.observe import OverflowHook
+from flairwatch.daemon.status import gather, problems, render
+from flairwatch.daemon.watch import Daemon, Tuning, retry_delay
+from flairwatch.daemon.workers import Report, classify
 from flairwatch.errors import InputRejected, StageFailed
-from flairwatch.inbox import Known, Step, plan, signature
-from flairwatch.ledger import JobState, Ledger
-from flairwatch.observe import OverflowHook
+from flairwatch.ledger.store import JobState, Ledger
 from flairwatch.records import FileRecord, Series, SeriesHeader
-from flairwatch.status import gather, problems, render
-from flairwatch.watch import Daemon, Tuning, retry_delay
-from flairwatch.workers import Report, classify
 from tests.daemon_fixtures import (
     FLAIR,
     REPO,

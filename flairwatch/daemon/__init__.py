@@ -1,0 +1,1 @@
+"""Daemon: watch the inbox, settle series, run workers, report status."""

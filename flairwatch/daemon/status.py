@@ -1,0 +1,228 @@
+"""``flairwatch status`` and ``flairwatch backup``: read the ledger while the daemon runs.
+
+``status`` prints job counts per state, the last errors, throughput and queue age, and exits
+0 when the daemon looks healthy, 1 when it does not (for a monitoring system's check):
+
+- the daemon's heartbeat (written every few seconds) is recent and says "running";
+- the queue is not stuck: the oldest job that may run has not waited longer than
+  ``--stuck-after`` while nothing started or finished;
+- the latest ``--failure-run`` processing jobs did not all fail.
+
+``backup`` copies the ledger with SQLite's online backup API, safe while the daemon writes.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+from flairwatch.errors import ConfigInvalid
+from flairwatch.ledger.store import JobState, Ledger
+
+DEFAULT_STALE_SECONDS = 60.0  # heartbeat older than this: the daemon is not running
+DEFAULT_STUCK_SECONDS = 3600.0
+DEFAULT_FAILURE_RUN = 3
+RECENT_ERRORS = 5
+
+
+@dataclass(frozen=True)
+class Report:
+    """What ``status`` found; times in seconds."""
+
+    now: float
+    daemon: dict[str, Any] | None
+    counts: dict[str, int]
+    queue_waiting: int
+    oldest_wait_s: float | None
+    done_last_hour: int
+    mean_seconds: float | None
+    errors: list[dict[str, Any]] = field(default_factory=list)
+    problems: list[str] = field(default_factory=list)
+
+    @property
+    def healthy(self) -> bool:
+        return not self.problems
+
+
+def problems(
+    daemon: dict[str, Any] | None,
+    now: float,
+    *,
+    oldest_wait_s: float | None,
+    last_activity: float | None,
+    outcomes: list[str],
+    stale_s: float,
+    stuck_s: float,
+    failure_run: int,
+) -> list[str]:
+    """Health problems from ledger facts (pure). An empty list means healthy."""
+    found = []
+    if daemon is None:
+        found.append("the daemon has never run on this ledger")
+    elif daemon["state"] == "stopped":
+        found.append(f"the daemon stopped {now - daemon['beat']:.0f} s ago")
+    elif now - daemon["beat"] > stale_s:
+        found.append(
+            f"no heartbeat for {now - daemon['beat']:.0f} s (pid {daemon['pid']} "
+            f"on {daemon['host']}): the daemon is not running or is hung"
+        )
+    idle_for = now - (last_activity or 0.0)
+    if oldest_wait_s is not None and oldest_wait_s > stuck_s and idle_for > stuck_s:
+        found.append(
+            f"queue stuck: the oldest job has waited {oldest_wait_s / 60:.0f} min and no job "
+            f"started or finished for {min(idle_for, oldest_wait_s) / 60:.0f} min"
+        )
+    recent = outcomes[:failure_run]
+    if failure_run > 0 and len(recent) == failure_run and all(s == "failed" for s in recent):
+        found.append(f"the last {failure_run} series failed; see the errors above")
+    return found
+
+
+def gather(
+    ledger: Ledger,
+    now: float,
+    *,
+    stale_s: float = DEFAULT_STALE_SECONDS,
+    stuck_s: float = DEFAULT_STUCK_SECONDS,
+    failure_run: int = DEFAULT_FAILURE_RUN,
+) -> Report:
+    counts = ledger.state_counts()
+    oldest = ledger.oldest_waiting(now)
+    oldest_wait = None if oldest is None else max(0.0, now - oldest)
+    waiting = len([j for j in ledger.jobs_in(JobState.QUEUED) if j.not_before <= now])
+    done, mean = ledger.done_since(now - 3600.0)
+    daemon = ledger.heartbeat()
+    errors = [
+        {"finished": t, "state": st, "series": key, "revision": rev, "error": err}
+        for t, st, key, rev, err in ledger.recent_errors(RECENT_ERRORS)
+    ]
+    found = problems(
+        daemon,
+        now,
+        oldest_wait_s=oldest_wait,
+        last_activity=ledger.last_activity(),
+        outcomes=ledger.recent_outcomes(failure_run),
+        stale_s=stale_s,
+        stuck_s=stuck_s,
+        failure_run=failure_run,
+    )
+    return Report(now, daemon, counts, waiting, oldest_wait, done, mean, errors, found)
+
+
+def _when(t: float | None) -> str:
+    return "-" if not t else time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(t))
+
+
+def render(report: Report) -> str:
+    lines = []
+    d = report.daemon
+    if d is None:
+        lines.append("daemon: never ran")
+    else:
+        age = report.now - d["beat"]
+        lines.append(
+            f"daemon: {d['state']} (pid {d['pid']} on {d['host']}, heartbeat {age:.0f} s ago, "
+            f"started {_when(d['started'])}, inbox {d['inbox']})"
+        )
+    order = [s.value for s in JobState]
+    counts = ", ".join(f"{s} {report.counts.get(s, 0)}" for s in order)
+    lines.append(f"series jobs: {counts}")
+    wait = "" if report.oldest_wait_s is None else f", oldest waiting {report.oldest_wait_s:.0f} s"
+    lines.append(f"queue: {report.queue_waiting} ready to run{wait}")
+    mean = "" if report.mean_seconds is None else f" (mean {report.mean_seconds:.1f} s each)"
+    lines.append(f"throughput: {report.done_last_hour} series done in the last hour{mean}")
+    if report.errors:
+        lines.append("last errors:")
+        for e in report.errors:
+            lines.append(
+                f"  {_when(e['finished'])} {e['state']} series {e['series']} "
+                f"r{e['revision']}: {e['error']}"
+            )
+    if report.healthy:
+        lines.append("health: OK")
+    else:
+        lines.extend(f"health: PROBLEM: {p}" for p in report.problems)
+    return "\n".join(lines)
+
+
+def _state_dir(args: argparse.Namespace) -> Path:
+    from flairwatch.config import load_config
+
+    state = args.state or load_config(args.config).state
+    if state is None:
+        raise ConfigInvalid("give --state DIR or --config FILE with a 'state' key")
+    return Path(state)
+
+
+def run_status(args: argparse.Namespace) -> int:
+    with Ledger.open_readonly(_state_dir(args)) as ledger:
+        report = gather(
+            ledger,
+            time.time(),
+            stale_s=args.stale_after,
+            stuck_s=args.stuck_after,
+            failure_run=args.failure_run,
+        )
+    if args.json:
+        print(json.dumps(asdict(report) | {"healthy": report.healthy}, indent=2, default=str))
+    else:
+        print(render(report))
+    return 0 if report.healthy else 1
+
+
+def run_backup(args: argparse.Namespace) -> int:
+    target = Path(args.to)
+    if target.is_dir():
+        target = target / time.strftime("ledger-%Y%m%d-%H%M%S.sqlite3")
+    with Ledger.open_readonly(_state_dir(args)) as ledger:  # never creates an empty ledger
+        ledger.backup_to(target)
+    print(f"ledger copied to {target}", file=sys.stderr)
+    return 0
+
+
+def _common(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--config", type=Path, help="YAML config file (its 'state' key is used)")
+    p.add_argument("--state", type=Path, help="ledger folder (overrides the config)")
+
+
+def add_parser(subparsers: Any) -> None:
+    p = subparsers.add_parser(
+        "status",
+        help="daemon health, job counts, last errors, throughput (exit 1 when unhealthy)",
+        description="Summarise the ledger; exit 0 when the daemon is healthy, 1 when not.",
+    )
+    _common(p)
+    p.add_argument("--json", action="store_true", help="machine-readable output")
+    p.add_argument(
+        "--stale-after",
+        type=float,
+        default=DEFAULT_STALE_SECONDS,
+        help="seconds without a heartbeat before the daemon counts as down (default %(default)s)",
+    )
+    p.add_argument(
+        "--stuck-after",
+        type=float,
+        default=DEFAULT_STUCK_SECONDS,
+        help="seconds a ready job may wait with no progress (default %(default)s)",
+    )
+    p.add_argument(
+        "--failure-run",
+        type=int,
+        default=DEFAULT_FAILURE_RUN,
+        help="this many failures in a row is unhealthy (default %(default)s)",
+    )
+    p.set_defaults(func=run_status)
+
+    b = subparsers.add_parser(
+        "backup",
+        help="copy the ledger safely while the daemon runs (SQLite backup API)",
+        description="Copy the ledger to FILE (or a dated file in a folder), atomically.",
+    )
+    _common(b)
+    b.add_argument("--to", required=True, type=Path, help="target file or folder")
+    b.set_defaults(func=run_backup)

@@ -1,0 +1,1 @@
+"""Ledger: the SQLite record of files, jobs, results and QC decisions."""

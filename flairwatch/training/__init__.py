@@ -1,0 +1,1 @@
+"""Model training (the ``train`` extra; needs torch): data, network, training loop, ONNX export."""
