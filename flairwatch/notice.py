@@ -22,3 +22,9 @@ They are not a medical device and have not been cleared or approved for clinical
 - Handle these files under your local rules for identifiable health data and research ethics,
   and within your licensed practice.
 """
+
+CAUTION = (
+    "flairwatch: research use only, not for diagnosis or treatment; validate any model on your own "
+    "scans and follow local rules for identifiable data."
+)
+"""The one-line caution every command that makes or ships results prints to stderr at start."""

@@ -82,7 +82,7 @@ def test_series_geometry_matches_volume(tmp_path: Path, kind: str, axial_case: P
     write_case(case, tmp_path / "c", patient_id="INV-001", patient_name="Invented^Person")
     img = read_series(tmp_path / "c" / "image")
     assert_same_grid(img, case.image.affine_lps, case.image.shape)
-    # Second oracle (CHECK-SOURCES.md): highdicom builds the same volume from the datasets.
+    # Second oracle (docs/sources.md): highdicom builds the same volume from the datasets.
     datasets = [pydicom.dcmread(f) for f in (tmp_path / "c" / "image").glob("*.dcm")]
     hd_vol = hd.get_volume_from_series(datasets)
     assert hd_vol.spatial_shape[0] == case.image.shape[2]
@@ -227,22 +227,6 @@ def test_write_series_non_square_pixels(tmp_path: Path) -> None:
     img = read_series(tmp_path / "s")
     assert_same_grid(img, affine, (20, 14, 5))
     np.testing.assert_array_equal(sitk.GetArrayFromImage(img).transpose(2, 1, 0), data)
-
-
-def test_cli_registers_phantoms(tmp_path: Path) -> None:
-    import argparse
-
-    from flairwatch.phantom import cli
-
-    parser = argparse.ArgumentParser()
-    cli.add_parser(parser.add_subparsers())
-    args = parser.parse_args(["phantoms", "--out", str(tmp_path)])
-    assert (args.count, args.first_seed, args.workers) == (10, 1, 1)
-    assert args.func is cli.run
-    args = parser.parse_args(["phantoms", "--out", str(tmp_path), "--count", "0"])
-    assert cli.run(args) == 0
-    bad = parser.parse_args(["phantoms", "--out", str(tmp_path), "--workers", "0"])
-    assert cli.run(bad) == 2
 
 
 def test_other_contrast_case_folder(tmp_path: Path, axial_case: PhantomCase) -> None:

@@ -3,6 +3,12 @@
 Exit codes: 0 success, 1 a series failed (or the daemon is unhealthy), 2 bad usage or config,
 130 a one-shot command interrupted by Ctrl-C. Errors meant for the user are one line on stderr;
 ``--debug`` shows the traceback.
+
+Start-up is kept short: the table :data:`COMMANDS` names each command, its one-line help and the
+module that holds its options and run function. ``main`` finds the command in ``argv`` first and
+imports only that command's module, so ``flairwatch --help`` imports no command module at all, and
+a command's own module imports heavy libraries (numpy, SimpleITK, ONNX Runtime...) only inside the
+function that runs it.
 """
 
 from __future__ import annotations
@@ -11,103 +17,132 @@ import argparse
 import importlib
 import logging
 import sys
-from collections.abc import Sequence
-from pathlib import Path
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 
 from flairwatch import __version__
-from flairwatch.config import Config, load_config, with_overrides
 from flairwatch.errors import ConfigInvalid, FlairwatchError, ModelInvalid
-
-log = logging.getLogger(__name__)
-
-# Modules that register further subcommands through ``add_parser(subparsers)``.
-_COMMAND_MODULES = (
-    "flairwatch.cli.demo",
-    "flairwatch.phantom.cli",
-    "flairwatch.daemon.watch",
-    "flairwatch.daemon.status",
-    "flairwatch.research.validate",
-    "flairwatch.research.export",
-    "flairwatch.research.qc_marks",
-    "flairwatch.research.reprocess",
-)
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
 
 
-def add_model_options(p: argparse.ArgumentParser) -> None:
-    """Options every command that runs the model shares; they override the config file."""
-    p.add_argument("--config", type=Path, help="YAML config file (see config.example.yaml)")
-    p.add_argument("--model", type=Path, help="model manifest (.yaml next to the .onnx)")
-    p.add_argument(
-        "--threshold", type=float, help="WMH probability threshold (default: the manifest's)"
-    )
-    p.add_argument("--min-lesion-mm3", type=float, help="drop lesions smaller than this, in mm^3")
-    p.add_argument("--connectivity", type=int, choices=(6, 18, 26), help="lesion neighbourhood")
-    p.add_argument("--threads", type=int, help="ONNX Runtime threads (default: CPUs available)")
+@dataclass(frozen=True)
+class Command:
+    """One subcommand: its name, one-line help and where its options are added.
+
+    ``target`` is ``"module"`` or ``"module:function"``; the function (default ``add_arguments``)
+    takes the subcommand's ``argparse`` parser, adds its options and sets ``func``, the function
+    that runs the command and returns the exit code.
+    """
+
+    name: str
+    help: str
+    target: str
 
 
-def config_from_args(args: argparse.Namespace, *extra: str) -> Config:
-    """Load ``--config`` and apply every flag of the same name that was given."""
-    cfg = load_config(getattr(args, "config", None))
-    names = ("model", "threshold", "min_lesion_mm3", "connectivity", "threads", *extra)
-    return with_overrides(cfg, **{n: getattr(args, n, None) for n in names})
+COMMANDS: tuple[Command, ...] = (
+    Command(
+        "process",
+        "segment the FLAIR series in folders or files once (no ledger)",
+        "flairwatch.cli.process",
+    ),
+    Command(
+        "watch",
+        "watch an inbox and process every FLAIR series that arrives (keeps the ledger)",
+        "flairwatch.cli.watch",
+    ),
+    Command(
+        "status",
+        "daemon health, job counts, last errors, throughput (exit 1 when unhealthy)",
+        "flairwatch.cli.status:add_status_arguments",
+    ),
+    Command(
+        "backup",
+        "copy the ledger safely while the daemon runs (SQLite backup API)",
+        "flairwatch.cli.status:add_backup_arguments",
+    ),
+    Command(
+        "reprocess",
+        "re-run done series with another model version and report what changed",
+        "flairwatch.cli.reprocess",
+    ),
+    Command(
+        "validate",
+        "score a model against reference masks in case folders",
+        "flairwatch.cli.validate",
+    ),
+    Command(
+        "export",
+        "one table of every series' result (CSV or JSON) for statistics",
+        "flairwatch.cli.export",
+    ),
+    Command(
+        "qc",
+        "review results: mark accepted/rejected, attach corrected masks, build the gallery",
+        "flairwatch.cli.qc",
+    ),
+    Command(
+        "models",
+        "list the models flairwatch can find: name, version, file hash, where, intended use",
+        "flairwatch.cli.models",
+    ),
+    Command(
+        "demo",
+        "make a demo inbox of invented participants and run the main job on it",
+        "flairwatch.cli.demo",
+    ),
+    Command(
+        "phantoms",
+        "write synthetic FLAIR phantoms with known WMH masks (research and testing only)",
+        "flairwatch.cli.phantoms",
+    ),
+)
+
+_BY_NAME = {c.name: c for c in COMMANDS}
+
+# global options that take no value: skipped while looking for the command's name
+_GLOBAL_FLAGS = frozenset({"--debug", "--quiet", "--version", "-h", "--help"})
 
 
-def _run_process(args: argparse.Namespace) -> int:
-    from flairwatch.engine.process import run_process
-
-    cfg = config_from_args(args, "results", "state")
-    if cfg.results is None:
-        raise ConfigInvalid("process needs --results DIR (or 'results' in the config file)")
-    return run_process(
-        args.inputs,
-        cfg.results,
-        cfg,
-        all_series=args.all_series,
-        say=lambda s: print(s, flush=True),
-        warn=lambda s: print(s, file=sys.stderr, flush=True),
-    )
+def _requested(argv: Sequence[str]) -> str | None:
+    """The command named in ``argv`` (the first word that is not a global option), if known."""
+    for word in argv:
+        if word in _GLOBAL_FLAGS:
+            continue
+        return word if word in _BY_NAME else None
+    return None
 
 
-def build_parser() -> argparse.ArgumentParser:
+def _adder(command: Command) -> Callable[[argparse.ArgumentParser], None]:
+    module_name, _, function = command.target.partition(":")
+    module = importlib.import_module(module_name)
+    adder: Callable[[argparse.ArgumentParser], None] = getattr(module, function or "add_arguments")
+    return adder
+
+
+def build_parser(load: Sequence[str] = ()) -> argparse.ArgumentParser:
+    """The argument parser; only the commands named in ``load`` get their options (and modules).
+
+    ``build_parser(load=[c.name for c in COMMANDS])`` builds the whole parser (documentation,
+    tests); ``main`` loads only the command it runs.
+    """
     parser = argparse.ArgumentParser(
         prog="flairwatch",
         description=(
             "White-matter hyperintensity masks and volumes from FLAIR MRI. "
             "Research use only: not for diagnosis or treatment."
         ),
+        epilog="'flairwatch COMMAND --help' shows a command's options.",
     )
     parser.add_argument("--version", action="version", version=f"flairwatch {__version__}")
     parser.add_argument("--debug", action="store_true", help="debug logs and tracebacks")
     parser.add_argument("--quiet", action="store_true", help="warnings and errors only")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     sub.required = True
-
-    p = sub.add_parser(
-        "process",
-        help="segment the FLAIR series in folders or files once (no ledger)",
-        description="Segment every FLAIR series found in INPUT folders/files and write result folders.",
-    )
-    p.add_argument(
-        "inputs", nargs="+", type=Path, metavar="INPUT", help="folder or file (DICOM, NIfTI)"
-    )
-    p.add_argument("--results", type=Path, help="results folder")
-    p.add_argument("--state", type=Path, help="folder for the installation secret")
-    p.add_argument(
-        "--all-series", action="store_true", help="process every usable series, FLAIR or not"
-    )
-    add_model_options(p)
-    p.set_defaults(func=_run_process)
-
-    for name in _COMMAND_MODULES:
-        try:
-            module = importlib.import_module(name)
-        except ModuleNotFoundError as exc:
-            if exc.name != name:
-                raise
-            continue
-        module.add_parser(sub)
+    for command in COMMANDS:
+        p = sub.add_parser(command.name, help=command.help, description=command.help)
+        if command.name in load:
+            _adder(command)(p)
     return parser
 
 
@@ -119,8 +154,11 @@ def _configure_logging(debug: bool, quiet: bool) -> None:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    """Run the command named in ``argv`` (default ``sys.argv[1:]``); returns the exit code."""
+    words = list(sys.argv[1:] if argv is None else argv)
+    requested = _requested(words)
+    parser = build_parser(load=() if requested is None else (requested,))
+    args = parser.parse_args(words)
     _configure_logging(args.debug, args.quiet)
     try:
         return int(args.func(args))
@@ -132,12 +170,7 @@ def main(argv: Sequence[str] | None = None) -> int:
             raise
         print(f"flairwatch: error: {exc}", file=sys.stderr)
         return EXIT_USAGE
-    except FlairwatchError as exc:
-        if args.debug:
-            raise
-        print(f"flairwatch: error: {exc}", file=sys.stderr)
-        return EXIT_FAILED
-    except OSError as exc:
+    except (FlairwatchError, OSError) as exc:
         if args.debug:
             raise
         print(f"flairwatch: error: {exc}", file=sys.stderr)

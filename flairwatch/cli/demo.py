@@ -167,18 +167,18 @@ def run_demo(folder: Path, model: Path | None, *, say: Callable[[str], None] = p
     return rc
 
 
-def add_parser(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
-    p = subparsers.add_parser(
-        "demo",
-        help="make a demo inbox of invented participants and run the main job on it",
-        description="Make synthetic FLAIR scans of invented participants and segment them.",
-    )
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.description = "Make synthetic FLAIR scans of invented participants and segment them."
     p.add_argument("--out", type=Path, default=DEFAULT_FOLDER, help="demo folder (default ./demo)")
-    p.add_argument("--model", type=Path, help="model manifest (default: the shipped model)")
-    p.set_defaults(func=_run)
+    p.add_argument(
+        "--model",
+        type=Path,
+        help="model manifest or installed model name (default: the default model)",
+    )
+    p.set_defaults(func=run)
 
 
-def _run(args: argparse.Namespace) -> int:
+def run(args: argparse.Namespace) -> int:
     if args.out.exists() and not args.out.is_dir():
         raise ConfigInvalid(f"--out {args.out} is a file; choose a folder")
     model = args.model

@@ -18,7 +18,6 @@ running back in the queue, and a finished folder the ledger missed is adopted, n
 
 from __future__ import annotations
 
-import argparse
 import contextlib
 import fcntl
 import logging
@@ -260,7 +259,7 @@ class Daemon:
             pool.submit(slot, Task(job.id, series, job.revision))
 
     def record(self, report: Report, now: float) -> None:
-        if report.kind not in ("done", "rejected", "failed", "crashed"):
+        if report.kind not in ("done", "refused", "failed", "crashed"):
             return
         job = self.ledger.job(report.job_id)
         label = self.ledger.series(job.series_id).series_key
@@ -296,13 +295,13 @@ class Daemon:
         message = report.message
         if transient:
             message = f"gave up after {job.attempts} attempts: {message}"
-        self._finish_bad(job, message, now, rejected=report.kind == "rejected")
+        self._finish_bad(job, message, now, rejected=report.kind == "refused")
 
     def _finish_bad(
         self, job: JobRow, message: str, now: float, *, rejected: bool = True,
         quarantine: bool = True,
     ) -> None:  # fmt: skip
-        state = JobState.REJECTED if rejected else JobState.FAILED
+        state = JobState.REFUSED if rejected else JobState.FAILED
         self.ledger.move_job(job.id, [JobState.RUNNING], state, now, error=message)
         label = self.ledger.series(job.series_id).series_key
         log.error("series %s: %s: %s", label, state.value, message)
@@ -432,46 +431,18 @@ class Daemon:
         return any(j.attempts > 0 for j in self.ledger.jobs_in(JobState.QUEUED))
 
 
-# ---- command line ------------------------------------------------------------------------
+# ---- entry ------------------------------------------------------------------------------
 
 
-def run_watch(args: argparse.Namespace) -> int:
-    from flairwatch.cli import config_from_args
+def serve(cfg: Config, *, once: bool = False) -> int:
+    """Take the state folder's lock, open the ledger and run the daemon until it stops.
 
-    cfg = config_from_args(args, "inbox", "results", "state", "quarantine", "workers")
-    for name in ("inbox", "results", "state"):
-        if getattr(cfg, name) is None:
-            raise ConfigInvalid(f"watch needs --{name} DIR (or '{name}' in the config file)")
+    ``cfg.inbox``, ``cfg.results`` and ``cfg.state`` must be set (the command line checks them).
+    """
     assert cfg.inbox is not None and cfg.results is not None and cfg.state is not None
-    if not cfg.inbox.is_dir():
-        raise ConfigInvalid(f"inbox {cfg.inbox} is not a folder; create it or fix 'inbox'")
     os.umask(OUTPUT_UMASK)
     cfg.results.mkdir(parents=True, exist_ok=True)
     cfg.state.mkdir(parents=True, exist_ok=True)
     with exclusive(cfg.state), Ledger.open(cfg.state) as ledger:
         secret = keys.load_or_create_secret(cfg.state)
-        return Daemon(cfg, ledger, secret, once=args.once).run()
-
-
-def add_parser(subparsers: Any) -> None:
-    from flairwatch.cli import add_model_options
-
-    p = subparsers.add_parser(
-        "watch",
-        help="watch an inbox and process every FLAIR series that arrives (keeps the ledger)",
-        description=(
-            "Watch the inbox folder, wait until each series is complete, process the FLAIR "
-            "series and record everything in the ledger. First SIGTERM/Ctrl-C finishes the "
-            "running series and exits; a second stops at once."
-        ),
-    )
-    p.add_argument("--inbox", type=Path, help="folder where DICOM files arrive")
-    p.add_argument("--results", type=Path, help="results folder")
-    p.add_argument("--state", type=Path, help="ledger folder (local disk)")
-    p.add_argument("--quarantine", type=Path, help="move refused series here (default: leave)")
-    p.add_argument("--workers", type=int, help="worker processes (default 1)")
-    p.add_argument(
-        "--once", action="store_true", help="process what is in the inbox now, then exit"
-    )
-    add_model_options(p)
-    p.set_defaults(func=run_watch)
+        return Daemon(cfg, ledger, secret, once=once).run()

@@ -29,13 +29,11 @@ that decides wins:
 
 from __future__ import annotations
 
-import argparse
 import csv
 import io
 import json
 import logging
 import math
-import sys
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -44,10 +42,8 @@ from flairwatch import keys
 from flairwatch.config import Identifiers
 from flairwatch.engine import results
 from flairwatch.engine.pipeline import MASK_FILE
-from flairwatch.errors import ConfigInvalid
 from flairwatch.ledger.queries import ResultRecord, reported_results
 from flairwatch.ledger.store import Ledger
-from flairwatch.notice import BANNER, NOTICE_TEXT
 from flairwatch.research.qc_marks import MaskMeasures, corrected_measures
 
 log = logging.getLogger(__name__)
@@ -253,55 +249,3 @@ def gather_rows(
             correction = corrected_measures(Path(rec.correction_path), connectivity)
         rows.append(build_row(rec, summary, correction, ids, secret))
     return mark_primary(rows)
-
-
-# ---- command line ------------------------------------------------------------------------
-
-
-def run_export(args: argparse.Namespace) -> int:
-    from flairwatch.cli import config_from_args
-
-    cfg = config_from_args(args, "state")
-    if cfg.state is None:
-        raise ConfigInvalid("export needs the ledger: give --config FILE with a 'state' key")
-    state = cfg.state
-    with Ledger.open_readonly(state) as ledger:
-        rows = gather_rows(
-            ledger,
-            ids=cfg.identifiers,
-            secret=lambda: keys.load_or_create_secret(state),
-            connectivity=cfg.connectivity,
-            model_version=args.model_version,
-        )
-    data = render_json(rows) if args.format == "json" else render_csv(rows)
-    if args.out is None:
-        print(data.decode("utf-8"), end="")
-    else:
-        results.write_atomic(args.out, data)
-        # the table stays tidy (one header row); its caution travels beside it
-        notice = args.out.with_name(args.out.name + ".RESEARCH_ONLY.txt")
-        results.write_atomic(notice, NOTICE_TEXT.encode("utf-8"))
-        log.info("%d series written to %s", len(rows), args.out)
-    print(BANNER, file=sys.stderr)
-    if not rows:
-        log.warning("no results to export%s",
-                    f" for model version {args.model_version}" if args.model_version else "")  # fmt: skip
-    return 0
-
-
-def add_parser(subparsers: Any) -> None:
-    p = subparsers.add_parser(
-        "export",
-        help="one table of every series' result (CSV or JSON) for statistics",
-        description=(
-            "Write one row per series: identifiers as configured, acquisition facts, model, "
-            "lesion volume and count (from a corrected mask when there is one), QC status, "
-            "primary-FLAIR flag. Research use only: not for diagnosis or treatment."
-        ),
-    )
-    p.add_argument("--config", type=Path, required=True, help="YAML config file")
-    p.add_argument("--state", type=Path, help="ledger folder (overrides the config)")
-    p.add_argument("--format", choices=("csv", "json"), default="csv", help="default: csv")
-    p.add_argument("--model-version", help="export this model version's results, not the current")
-    p.add_argument("--out", type=Path, help="output file, written atomically (default: stdout)")
-    p.set_defaults(func=run_export)

@@ -23,11 +23,9 @@ applied after the report); a corrected mask stays the reported result.
 
 from __future__ import annotations
 
-import argparse
 import logging
 import os
 import re
-import sys
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -35,7 +33,6 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any, TextIO
 
-from flairwatch import keys
 from flairwatch.config import Config
 from flairwatch.engine import results
 from flairwatch.errors import ConfigInvalid, FlairwatchError, InputRejected, StageFailed
@@ -43,7 +40,7 @@ from flairwatch.intake.assemble import group_series
 from flairwatch.intake.discover import read_record
 from flairwatch.ledger.queries import results_of_series
 from flairwatch.ledger.store import JobRow, JobState, Ledger
-from flairwatch.research.change_report import Limits, change_row, compare_folders, write_report
+from flairwatch.research.change_report import Limits, change_row, compare_folders
 
 log = logging.getLogger(__name__)
 
@@ -266,7 +263,7 @@ def run_one(
             ledger.move_job(job.id, [JobState.RUNNING], JobState.QUEUED, now, error=str(exc),
                             not_before=now + RETRY_SECONDS)  # fmt: skip
             return "retry"
-        state = JobState.REJECTED if isinstance(exc, InputRejected) else JobState.FAILED
+        state = JobState.REFUSED if isinstance(exc, InputRejected) else JobState.FAILED
         ledger.move_job(job.id, [JobState.RUNNING], state, now, error=str(exc))
         log.error("series job %d: %s: %s", job.id, state.value, exc)
         return state.value
@@ -309,164 +306,3 @@ def change_rows(
         }  # fmt: skip
         rows.append(change_row(ids, change, limits, has_correction=bool(latest.correction_path)))
     return rows
-
-
-# ---- command line ------------------------------------------------------------------------
-
-
-def run_reprocess(args: argparse.Namespace) -> int:
-    from flairwatch.cli import config_from_args
-    from flairwatch.engine.manifest import load_manifest
-
-    cfg = config_from_args(args, "results", "state")
-    if cfg.state is None or cfg.results is None:
-        raise ConfigInvalid("reprocess needs 'state' and 'results' in the config file")
-    manifest = load_manifest(cfg.model)
-    name, version = manifest.name, manifest.version
-    limits = Limits(volume_ml=args.flag_volume_ml, percent=args.flag_percent, dice=args.flag_dice)
-    since = parse_since(args.since) if args.since else None
-    with Ledger.open(cfg.state) as ledger:
-        if args.report_only:
-            ids = [int(r[0]) for r in ledger.query(
-                "SELECT DISTINCT series_id FROM results WHERE model_name = ? AND model_version = ?",
-                (name, version))]  # fmt: skip
-            return _report(ledger, cfg, ids, name, version, limits)
-        now = time.time()
-        back = requeue_orphans(ledger, name, version, now)
-        added, pending = queue_reruns(
-            ledger, name, version, now=now, since=since, only_outdated=args.only_outdated
-        )
-        print(f"queued {added} series for {name} {version} ({pending + back} already waiting)",
-              file=sys.stderr)  # fmt: skip
-        if args.queue_only:
-            return EXIT_OK
-        if args.cluster:
-            return _run_cluster(ledger, cfg, args.cluster, name, version, limits)
-        return _run_all(ledger, cfg, manifest, name, version, limits)
-
-
-def _run_cluster(ledger: Ledger, cfg: Config, address: str, name: str, version: str,
-                 limits: Limits) -> int:  # fmt: skip
-    try:
-        from flairwatch.research.scaleout import connect, run_on_cluster
-    except ImportError as exc:
-        if (exc.name or "").split(".")[0] not in ("dask", "distributed"):
-            raise
-        raise ConfigInvalid(
-            "--cluster needs Dask distributed; install the 'cluster' extra (dask[distributed])"
-        ) from None
-
-    secret = keys.load_or_create_secret(cfg.state or Path("."))
-    progress = Progress(remaining(ledger, name, version), sys.stderr,
-                        tty=sys.stderr.isatty(), clock=time.monotonic)  # fmt: skip
-    client, cluster = connect(address)
-    try:
-        finished, failures = run_on_cluster(
-            ledger, client, cfg, cfg.model, secret, name=name, version=version,
-            on_step=lambda job_id, outcome: progress.step(f"job {job_id} {outcome}"),
-        )  # fmt: skip
-    finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
-    if finished:
-        _report(ledger, cfg, finished, name, version, limits)
-        _prune(ledger, cfg)
-    return EXIT_FAILED if failures else EXIT_OK
-
-
-def _run_all(ledger: Ledger, cfg: Config, manifest: Any, name: str, version: str,
-             limits: Limits) -> int:  # fmt: skip
-    from flairwatch.engine.pipeline import Engine
-
-    engine = Engine(cfg, manifest=manifest)
-    secret = keys.load_or_create_secret(cfg.state or Path("."))
-    progress = Progress(remaining(ledger, name, version), sys.stderr,
-                        tty=sys.stderr.isatty(), clock=time.monotonic)  # fmt: skip
-    finished: list[int] = []
-    failures = 0
-    while True:
-        while arrivals_waiting(ledger, time.time()):
-            time.sleep(ARRIVAL_POLL_SECONDS)
-        job = claim_rerun(ledger, name, version, os.getpid(), time.time())
-        if job is None:
-            break
-        outcome = run_one(ledger, engine, cfg, secret, job, time.time())
-        key = ledger.series(job.series_id).series_key or str(job.series_id)
-        if outcome == "done":
-            finished.append(job.series_id)
-        elif outcome != "retry":
-            failures += 1
-        progress.step(f"{key} {outcome}")
-    left = remaining(ledger, name, version)
-    if left:
-        print(f"{left} re-run job(s) still waiting (a retry later, or another process has them);"
-              " run reprocess again to finish them", file=sys.stderr)  # fmt: skip
-    if finished:
-        _report(ledger, cfg, finished, name, version, limits)
-        _prune(ledger, cfg)
-    return EXIT_FAILED if failures else EXIT_OK
-
-
-def _prune(ledger: Ledger, cfg: Config) -> None:
-    """After the change report (which reads the old folders): apply ``keep_versions``."""
-    from flairwatch.research.retention import prune_versions
-
-    removed = prune_versions(ledger, cfg.keep_versions)
-    if removed:
-        print(f"removed {len(removed)} older result folder(s) (keep_versions {cfg.keep_versions})",
-              file=sys.stderr)  # fmt: skip
-
-
-def _report(ledger: Ledger, cfg: Config, ids: Sequence[int], name: str, version: str,
-            limits: Limits) -> int:  # fmt: skip
-    assert cfg.results is not None
-    rows = change_rows(ledger, ids, name, version, limits, cfg.connectivity)
-    stamp = time.strftime("%Y%m%dT%H%M%SZ", time.gmtime())
-    base = cfg.results / "reports" / f"changes-{name}-{version}-{stamp}"
-    folder, n = base, 1
-    while folder.exists():  # two reports in one second: never overwrite the first
-        n += 1
-        folder = base.with_name(f"{base.name}-{n}")
-    write_report(folder, rows, limits, f"Changes with model {name} {version}")
-    flagged = sum(r["flagged"] for r in rows)
-    print(f"change report: {folder / 'report.html'} ({len(rows)} series, {flagged} flagged)",
-          file=sys.stderr)  # fmt: skip
-    return EXIT_OK
-
-
-def add_parser(subparsers: Any) -> None:
-    from flairwatch.cli import add_model_options
-
-    p = subparsers.add_parser(
-        "reprocess",
-        help="re-run done series with another model version and report what changed",
-        description=(
-            "Queue every done series whose current result comes from another model, run the "
-            "re-runs below new arrivals' priority, then write a change report."
-        ),
-    )
-    add_model_options(p)
-    p.add_argument("--results", type=Path, help="results folder (overrides the config)")
-    p.add_argument("--state", type=Path, help="ledger folder (overrides the config)")
-    p.add_argument("--since", help="only series that arrived on or after this date (YYYY-MM-DD)")
-    p.add_argument(
-        "--only-outdated", action="store_true", help="only results of an older model version"
-    )
-    p.add_argument(
-        "--queue-only", action="store_true", help="queue the jobs and leave them to the daemon"
-    )
-    p.add_argument("--report-only", action="store_true", help="only write the change report")
-    p.add_argument(
-        "--cluster",
-        metavar="ADDRESS",
-        help="run on a Dask scheduler at ADDRESS, or local:N for N local worker processes",
-    )
-    d = Limits()
-    p.add_argument("--flag-volume-ml", type=float, default=d.volume_ml,
-                   help="flag a volume change above this, mL (default %(default)s)")  # fmt: skip
-    p.add_argument("--flag-percent", type=float, default=d.percent,
-                   help="flag a relative change above this, %% (default %(default)s)")  # fmt: skip
-    p.add_argument("--flag-dice", type=float, default=d.dice,
-                   help="flag a Dice between old and new below this (default %(default)s)")  # fmt: skip
-    p.set_defaults(func=run_reprocess)

@@ -145,7 +145,7 @@ def run_on_cluster(
         try:
             result: WorkDone = future.result()
         except Exception as exc:  # any worker error is recorded for its series; the run goes on
-            state = JobState.REJECTED if isinstance(exc, InputRejected) else JobState.FAILED
+            state = JobState.REFUSED if isinstance(exc, InputRejected) else JobState.FAILED
             message = str(exc) if isinstance(exc, FlairwatchError | OSError) else (
                 f"unexpected {type(exc).__name__}: {exc}")  # fmt: skip
             ledger.move_job(job.id, [JobState.RUNNING], state, time.time(), error=message)

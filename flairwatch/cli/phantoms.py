@@ -1,23 +1,17 @@
-"""The ``phantoms`` subcommand: write a bank of synthetic FLAIR case folders."""
+"""``flairwatch phantoms``: write a bank of synthetic FLAIR case folders (:mod:`flairwatch.phantom`)."""
 
 from __future__ import annotations
 
 import argparse
 from pathlib import Path
-from typing import Any
 
-from flairwatch.phantom.bank import make_bank
+from flairwatch.errors import ConfigInvalid
 
 
-def add_parser(subparsers: Any) -> None:
-    """Register ``phantoms`` on an ``argparse`` subparsers object."""
-    p = subparsers.add_parser(
-        "phantoms",
-        help="write synthetic FLAIR phantoms with known WMH masks (research and testing only)",
-        description=(
-            "Write synthetic FLAIR case folders (DICOM series, WMH reference mask, intracranial "
-            "mask, case.json). Phantoms are for research and software testing only."
-        ),
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.description = (
+        "Write synthetic FLAIR case folders (DICOM series, WMH reference mask, intracranial "
+        "mask, case.json). Phantoms are for research and software testing only."
     )
     p.add_argument("--out", type=Path, required=True, help="folder that receives the case folders")
     p.add_argument("--count", type=int, default=10, help="number of phantoms (default 10)")
@@ -30,9 +24,12 @@ def add_parser(subparsers: Any) -> None:
 
 def run(args: argparse.Namespace) -> int:
     """Build the phantoms and print one case folder per line; returns the exit code."""
-    if args.count < 0 or args.workers < 1:
-        print("--count must be >= 0 and --workers >= 1")
-        return 2
+    if args.count < 0:
+        raise ConfigInvalid(f"--count {args.count}: give 0 or more phantoms")
+    if args.workers < 1:
+        raise ConfigInvalid(f"--workers {args.workers}: give 1 or more worker processes")
+    from flairwatch.phantom.bank import make_bank
+
     seeds = range(args.first_seed, args.first_seed + args.count)
     for path in make_bank(args.out, seeds, workers=args.workers, progress=True):
         print(path)

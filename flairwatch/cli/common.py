@@ -1,0 +1,67 @@
+"""Options and helpers that several commands share.
+
+Only the standard library and light flairwatch modules are imported here at module level: this
+module is loaded for every command's ``--help``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import sys
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from flairwatch.notice import CAUTION
+
+if TYPE_CHECKING:
+    from flairwatch.config import Config
+
+log = logging.getLogger("flairwatch")
+
+CAUTION_EPILOG = (
+    "Research use only: not for diagnosis or treatment. Validate any model on your own scans "
+    "(flairwatch validate) and follow local rules for identifiable data."
+)
+"""Added to the help text of every command that makes or ships results."""
+
+
+def add_model_options(p: argparse.ArgumentParser) -> None:
+    """Options every command that runs the model shares; they override the config file."""
+    p.add_argument("--config", type=Path, help="YAML config file (see config.example.yaml)")
+    p.add_argument(
+        "--model",
+        type=Path,
+        help="model: a manifest path (.yaml next to the .onnx) or the name of an installed model "
+        "(see 'flairwatch models')",
+    )
+    p.add_argument(
+        "--threshold", type=float, help="WMH probability threshold (default: the manifest's)"
+    )
+    p.add_argument("--min-lesion-mm3", type=float, help="drop lesions smaller than this, in mm^3")
+    p.add_argument("--connectivity", type=int, choices=(6, 18, 26), help="lesion neighbourhood")
+    p.add_argument("--threads", type=int, help="ONNX Runtime threads (default: CPUs available)")
+
+
+def config_from_args(args: argparse.Namespace, *extra: str) -> Config:
+    """Load ``--config`` and apply every flag of the same name that was given."""
+    from flairwatch.config import load_config, with_overrides
+
+    cfg = load_config(getattr(args, "config", None))
+    names = ("model", "threshold", "min_lesion_mm3", "connectivity", "threads", *extra)
+    return with_overrides(cfg, **{n: getattr(args, n, None) for n in names})
+
+
+def say(text: str) -> None:
+    """One line of progress on stdout."""
+    print(text, flush=True)
+
+
+def warn(text: str) -> None:
+    """One line of warning on stderr."""
+    print(text, file=sys.stderr, flush=True)
+
+
+def show_caution() -> None:
+    """Print the research-only caution on stderr (and to the log) as a command starts."""
+    warn(CAUTION)
