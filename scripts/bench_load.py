@@ -113,7 +113,7 @@ def finished(state: Path) -> list[tuple[str, float, float, int | None]]:
     try:
         return db.execute(
             """SELECT state, started, finished, worker_rss_kb FROM jobs
-               WHERE state IN ('done', 'failed', 'rejected') ORDER BY finished"""
+               WHERE state IN ('done', 'failed', 'refused') ORDER BY finished"""
         ).fetchall()
     except sqlite3.OperationalError:
         return []

@@ -12,6 +12,8 @@ from pathlib import Path
 import pytest
 
 from flairwatch.errors import ConfigInvalid
+from flairwatch.ledger import schema
+from flairwatch.ledger.schema import SCHEMA_VERSION
 from flairwatch.ledger.store import (
     LEDGER_FILE,
     FileRow,
@@ -53,7 +55,7 @@ def test_open_sets_wal_and_full_sync(tmp_path: Path) -> None:
         # PRAGMA docs: synchronous FULL is 2
         assert led.query("PRAGMA journal_mode")[0][0] == "wal"
         assert led.query("PRAGMA synchronous")[0][0] == 2
-        assert led.query("PRAGMA user_version")[0][0] == 1
+        assert led.query("PRAGMA user_version")[0][0] == SCHEMA_VERSION == 2
     with Ledger.open(tmp_path / "state") as led:  # reopening keeps the schema
         assert led.state_counts() == {}
 
@@ -193,3 +195,185 @@ def test_backup_is_a_consistent_copy(tmp_path: Path) -> None:
     assert copy.execute("SELECT COUNT(*) FROM jobs WHERE state='queued'").fetchone()[0] == 5
     copy.close()
     assert not list(tmp_path.glob(".copy*"))
+
+
+# ---- schema migration ------------------------------------------------------------------------
+
+# The ledger tables of flairwatch 0.1 (schema 1), copied verbatim from flairwatch/ledger_schema.py
+# as it was before the 0.2 layout: a ledger that an operator's lab already has on disk.
+SCHEMA_V1 = """
+CREATE TABLE series (
+    id INTEGER PRIMARY KEY,
+    study_uid TEXT NOT NULL,
+    series_uid TEXT NOT NULL,
+    revision INTEGER NOT NULL,
+    subject_key TEXT,
+    study_key TEXT,
+    series_key TEXT,
+    selection TEXT NOT NULL DEFAULT 'pending' CHECK (selection IN ('pending','selected','skipped')),
+    select_rule TEXT,
+    select_reason TEXT,
+    signature TEXT,
+    n_files INTEGER NOT NULL DEFAULT 0,
+    stable_since REAL,
+    first_seen REAL NOT NULL,
+    last_seen REAL NOT NULL,
+    UNIQUE (study_uid, series_uid, revision)
+);
+CREATE TABLE files (
+    id INTEGER PRIMARY KEY,
+    path TEXT NOT NULL UNIQUE,
+    size INTEGER NOT NULL,
+    mtime_ns INTEGER NOT NULL,
+    sop_uid TEXT,
+    study_uid TEXT,
+    series_uid TEXT,
+    series_id INTEGER REFERENCES series(id),
+    reason TEXT,
+    gone INTEGER NOT NULL DEFAULT 0,
+    first_seen REAL NOT NULL,
+    last_seen REAL NOT NULL
+);
+CREATE INDEX files_identity ON files (study_uid, series_uid);
+CREATE TABLE jobs (
+    id INTEGER PRIMARY KEY,
+    series_id INTEGER NOT NULL REFERENCES series(id),
+    state TEXT NOT NULL,
+    attempts INTEGER NOT NULL DEFAULT 0,
+    priority INTEGER NOT NULL DEFAULT 0,
+    model_name TEXT,
+    model_version TEXT,
+    not_before REAL NOT NULL DEFAULT 0,
+    created REAL NOT NULL,
+    queued REAL,
+    started REAL,
+    finished REAL,
+    seconds REAL,
+    error TEXT,
+    result_path TEXT,
+    worker_pid INTEGER,
+    worker_rss_kb INTEGER
+);
+CREATE INDEX jobs_state ON jobs (state, priority, id);
+CREATE INDEX jobs_series ON jobs (series_id);
+CREATE TABLE results (
+    id INTEGER PRIMARY KEY,
+    series_id INTEGER NOT NULL REFERENCES series(id),
+    job_id INTEGER REFERENCES jobs(id),
+    model_name TEXT NOT NULL,
+    model_version TEXT NOT NULL,
+    result_path TEXT NOT NULL,
+    lesion_volume_ml REAL,
+    lesion_count INTEGER,
+    adopted INTEGER NOT NULL DEFAULT 0,
+    current INTEGER NOT NULL DEFAULT 0,
+    created REAL NOT NULL
+);
+CREATE INDEX results_series ON results (series_id);
+CREATE TABLE qc_marks (
+    id INTEGER PRIMARY KEY,
+    result_id INTEGER NOT NULL REFERENCES results(id),
+    mark TEXT NOT NULL CHECK (mark IN ('accepted','rejected')),
+    note TEXT,
+    marked_by TEXT,
+    marked REAL NOT NULL
+);
+CREATE TABLE corrected_masks (
+    id INTEGER PRIMARY KEY,
+    result_id INTEGER NOT NULL REFERENCES results(id),
+    path TEXT NOT NULL,
+    note TEXT,
+    added REAL NOT NULL
+);
+CREATE TABLE heartbeat (
+    id INTEGER PRIMARY KEY CHECK (id = 1),
+    pid INTEGER NOT NULL,
+    host TEXT,
+    started REAL NOT NULL,
+    beat REAL NOT NULL,
+    state TEXT NOT NULL,
+    inbox TEXT
+);
+"""
+
+
+def _old_ledger(state: Path) -> Path:
+    """A schema-1 ledger with a done, a refused ('rejected' then), a failed and a queued job."""
+    state.mkdir()
+    path = state / LEDGER_FILE
+    db = sqlite3.connect(path, isolation_level=None)
+    db.executescript(SCHEMA_V1)
+    db.execute("PRAGMA user_version=1")
+    for i, st in enumerate(("done", "rejected", "failed", "queued"), start=1):
+        db.execute(
+            "INSERT INTO series (id, study_uid, series_uid, revision, series_key, first_seen,"
+            " last_seen) VALUES (?, '1.2', ?, 1, ?, 1.0, 1.0)",
+            (i, f"9.{i}", f"e{i}"),
+        )
+        db.execute(
+            "INSERT INTO jobs (id, series_id, state, attempts, created, finished, error)"
+            " VALUES (?, ?, ?, 1, 1.0, ?, ?)",
+            (i, i, st, 2.0 if st != "queued" else None, "slice gap" if st == "rejected" else None),
+        )
+    db.execute(
+        "INSERT INTO results (id, series_id, job_id, model_name, model_version, result_path,"
+        " current, created) VALUES (1, 1, 1, 'm', '1', '/r/e1/v1', 1, 2.0)"
+    )
+    # a QC decision 'rejected' is not a job state: the migration must leave it alone
+    db.execute(
+        "INSERT INTO qc_marks (result_id, mark, note, marked) VALUES (1, 'rejected', 'motion', 3.0)"
+    )
+    db.close()
+    return path
+
+
+def test_schema_1_ledger_is_migrated_in_place(tmp_path: Path) -> None:
+    path = _old_ledger(tmp_path / "state")
+    # a reader cannot migrate: it says what to do instead of misreading the old state names
+    with pytest.raises(ConfigInvalid, match=r"schema 1, older .* start 'flairwatch watch'"):
+        Ledger.open_readonly(tmp_path / "state")
+    with Ledger.open(tmp_path / "state") as led:
+        assert led.query("PRAGMA user_version")[0][0] == 2
+        states = dict(led.query("SELECT id, state FROM jobs"))
+        assert states == {1: "done", 2: "refused", 3: "failed", 4: "queued"}
+        assert [j.id for j in led.jobs_in(JobState.REFUSED)] == [2]
+        assert led.job(2).error == "slice gap"
+        assert led.state_counts() == {"done": 1, "refused": 1, "failed": 1, "queued": 1}
+        assert led.query("SELECT mark, note FROM qc_marks") == [("rejected", "motion")]
+        assert led.query("SELECT result_path, current FROM results") == [("/r/e1/v1", 1)]
+        assert led.query("SELECT COUNT(*) FROM series")[0][0] == 4
+    with Ledger.open_readonly(tmp_path / "state") as led:  # now readable by status
+        assert led.recent_outcomes(5).count("refused") == 1
+    # the pre-migration copy is kept, untouched
+    keep = sqlite3.connect(tmp_path / "state" / "ledger-schema1.sqlite3")
+    assert keep.execute("PRAGMA user_version").fetchone()[0] == 1
+    assert keep.execute("SELECT state FROM jobs WHERE id = 2").fetchone()[0] == "rejected"
+    keep.close()
+    assert path.exists()
+
+
+def test_failed_migration_leaves_the_old_ledger_intact(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    _old_ledger(tmp_path / "state")
+    broken = {2: (*schema.MIGRATIONS[2], "UPDATE no_such_table SET x = 1")}
+    monkeypatch.setattr(schema, "MIGRATIONS", broken)
+    with pytest.raises(sqlite3.OperationalError, match="no_such_table"):
+        Ledger.open(tmp_path / "state")
+    db = sqlite3.connect(tmp_path / "state" / LEDGER_FILE)
+    # one transaction: neither the renamed states nor the new version number were kept
+    assert db.execute("PRAGMA user_version").fetchone()[0] == 1
+    assert db.execute("SELECT state FROM jobs WHERE id = 2").fetchone()[0] == "rejected"
+    db.close()
+    monkeypatch.undo()
+    with Ledger.open(tmp_path / "state") as led:  # the next start succeeds
+        assert led.job(2).state is JobState.REFUSED
+
+
+def test_newer_ledger_is_refused(tmp_path: Path) -> None:
+    with Ledger.open(tmp_path) as led:
+        led.query(f"PRAGMA user_version={SCHEMA_VERSION + 1}")
+    with pytest.raises(ConfigInvalid, match="newer than this flairwatch"):
+        Ledger.open(tmp_path)
+    with pytest.raises(ConfigInvalid, match="upgrade flairwatch"):
+        Ledger.open_readonly(tmp_path)

@@ -58,7 +58,7 @@ def test_junk_never_gives_a_result(tmp_path: Path, tiny_model_manifest: Path) ->
         if kind in ("localizer", "non-FLAIR"):
             assert state == "skipped", kind
         elif kind in ("truncated pixel data", "no pixel data"):
-            assert state == "rejected" and error, kind
+            assert state == "refused" and error, kind
         else:
             assert state == "not a series", kind
     (result,) = complete_results(tmp_path / "results")

@@ -174,8 +174,8 @@ def test_settle_steps() -> None:
     # a re-sent copy with another size: ignored once done, a new look once refused
     resent = _series(("a", 10), ("b", 12))
     assert plan(resent, done, 999.0, 30) is Step.NOTHING
-    assert plan(resent, replace(done, job_state=JobState.REJECTED), 999.0, 30) is Step.NEW_REVISION
-    assert plan(s, replace(done, job_state=JobState.REJECTED), 999.0, 30) is Step.NOTHING
+    assert plan(resent, replace(done, job_state=JobState.REFUSED), 999.0, 30) is Step.NEW_REVISION
+    assert plan(s, replace(done, job_state=JobState.REFUSED), 999.0, 30) is Step.NOTHING
     running = replace(done, job_state=JobState.RUNNING, sops_taken=frozenset())
     assert plan(_series(("a", 10), ("c", 10)), running, 999.0, 30) is Step.NOTHING
 
@@ -194,7 +194,7 @@ def test_retry_backoff_doubles_up_to_a_cap() -> None:
 @pytest.mark.parametrize(
     ("exc", "kind", "transient"),
     [
-        (InputRejected("gap"), "rejected", False),
+        (InputRejected("gap"), "refused", False),
         (StageFailed("model", transient=False), "failed", False),
         (StageFailed("busy", transient=True), "failed", True),
         (OSError(errno.ENOSPC, "No space left on device"), "failed", True),
@@ -254,7 +254,7 @@ def test_health_rules() -> None:
     assert _health(beat, 1010.0, oldest_wait_s=700.0, last_activity=1000.0) == []
     failing = ("failed", "failed", "failed", "done")
     assert "last 3 series failed" in _health(beat, 1010.0, outcomes=failing)[0]
-    assert _health(beat, 1010.0, outcomes=("failed", "rejected", "failed")) == []
+    assert _health(beat, 1010.0, outcomes=("failed", "refused", "failed")) == []
 
 
 def _fixed_keys(series_key: str) -> Callable[[int], tuple[str, str, str]]:
@@ -263,7 +263,7 @@ def _fixed_keys(series_key: str) -> Callable[[int], tuple[str, str, str]]:
 
 def test_status_report_from_a_real_ledger(tmp_path: Path) -> None:
     with Ledger.open(tmp_path) as led:
-        for uid, outcome in (("9.1", "done"), ("9.2", "rejected")):
+        for uid, outcome in (("9.1", "done"), ("9.2", "refused")):
             _, job = led.new_revision("1.2", uid, _fixed_keys(f"e{uid}"), 100.0)
             led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 101.0)
             assert led.claim_next(102.0, "m", "1", 7) is not None
@@ -271,13 +271,13 @@ def test_status_report_from_a_real_ledger(tmp_path: Path) -> None:
                 summary = {"model": {"name": "m", "version": "1"}}
                 led.finish_done(job.id, "/r", summary, adopted=False, seconds=4.0, now=110.0)
             else:
-                led.move_job(job.id, [JobState.RUNNING], JobState.REJECTED, 111.0, error="gap")
+                led.move_job(job.id, [JobState.RUNNING], JobState.REFUSED, 111.0, error="gap")
         led.beat(42, "running", 115.0, inbox="/in", started=90.0)
         report = gather(led, 120.0)
-    assert report.healthy and report.counts == {"done": 1, "rejected": 1}
+    assert report.healthy and report.counts == {"done": 1, "refused": 1}
     assert (report.done_last_hour, report.mean_seconds) == (1, 4.0)
     text = render(report)
-    assert "done 1" in text and "rejected 1" in text and "health: OK" in text
+    assert "done 1" in text and "refused 1" in text and "health: OK" in text
     assert "series e9.2 r1: gap" in text
 
 
@@ -306,8 +306,8 @@ def test_transient_failures_back_off_then_give_up(tmp_path: Path) -> None:
         _, job2 = led.new_revision("1.2", "9.2", _fixed_keys("e2"), 0.0)
         led.move_job(job2.id, [JobState.SETTLING], JobState.QUEUED, 0.0)
         assert led.claim_next(now, "m", "1", 5) is not None
-        daemon.record(Report("rejected", job2.id, "slice gap"), now)
-        assert led.job(job2.id).state is JobState.REJECTED
+        daemon.record(Report("refused", job2.id, "slice gap"), now)
+        assert led.job(job2.id).state is JobState.REFUSED
 
 
 def test_worker_killed_mid_series_is_retried(tmp_path: Path, tiny_model_manifest: Path) -> None:

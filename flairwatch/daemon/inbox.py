@@ -164,7 +164,7 @@ def plan(series: Series, known: Known | None, now: float, settle_seconds: float)
             return Step.NEW_REVISION
         # a refused series whose files were re-sent or removed is worth another look; a done
         # one is not re-run for a re-sent copy of the same instances
-        refused = known.job_state in (JobState.REJECTED, JobState.FAILED)
+        refused = known.job_state in (JobState.REFUSED, JobState.FAILED)
         if refused and signature(series) != known.signature:
             return Step.NEW_REVISION
     # queued or running: a late instance waits until that job ends, then makes a new revision

@@ -7,7 +7,7 @@ worker processes only compute. The loop:
    and every ``rescan_seconds``), record the files, and move each series one step
    (:func:`flairwatch.daemon.inbox.plan`): new revision, still changing, settled -> queued or skipped;
 2. hand queued jobs to idle workers (priority first, then age);
-3. record what workers report: done (after the result folder is durably in place), rejected
+3. record what workers report: done (after the result folder is durably in place), refused
    (bad input, files left in place or moved to quarantine), failed (retried with exponential
    back-off when transient, recorded for good otherwise);
 4. every few seconds: heartbeat row, watcher health check.
@@ -152,7 +152,7 @@ class Daemon:
         self.model: dict[str, Any] = {}
         self.next_scan = 0.0
         self.once_targets: set[tuple[str, str]] = set()
-        self.unfinished = 0  # series of this run that failed or were rejected
+        self.unfinished = 0  # series of this run that failed or were refused
 
     # ---- scanning and settling --------------------------------------------------------
 
@@ -295,13 +295,13 @@ class Daemon:
         message = report.message
         if transient:
             message = f"gave up after {job.attempts} attempts: {message}"
-        self._finish_bad(job, message, now, rejected=report.kind == "refused")
+        self._finish_bad(job, message, now, refused=report.kind == "refused")
 
     def _finish_bad(
-        self, job: JobRow, message: str, now: float, *, rejected: bool = True,
+        self, job: JobRow, message: str, now: float, *, refused: bool = True,
         quarantine: bool = True,
     ) -> None:  # fmt: skip
-        state = JobState.REFUSED if rejected else JobState.FAILED
+        state = JobState.REFUSED if refused else JobState.FAILED
         self.ledger.move_job(job.id, [JobState.RUNNING], state, now, error=message)
         label = self.ledger.series(job.series_id).series_key
         log.error("series %s: %s: %s", label, state.value, message)

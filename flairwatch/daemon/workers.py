@@ -54,7 +54,7 @@ class Task:
 
 @dataclass(frozen=True)
 class Report:
-    """A message from a worker: ready, init_failed, done, rejected, failed, crashed."""
+    """A message from a worker: ready, init_failed, done, refused, failed, crashed."""
 
     kind: str
     job_id: int = 0
@@ -89,7 +89,7 @@ def _die_with_parent(parent_pid: int) -> None:
 def classify(exc: BaseException) -> Report:
     """Turn an exception from processing into a report (job_id filled in by the caller)."""
     if isinstance(exc, InputRejected):
-        return Report("rejected", message=str(exc))
+        return Report("refused", message=str(exc))
     if isinstance(exc, StageFailed):
         return Report("failed", message=str(exc), transient=exc.transient)
     if isinstance(exc, OSError):
@@ -277,7 +277,7 @@ class WorkerPool:
             self.model = report.summary
         elif report.kind == "retiring":
             slot.retiring = True
-        elif report.kind in ("done", "rejected", "failed"):
+        elif report.kind in ("done", "refused", "failed"):
             slot.job_id = None
         return report
 

@@ -10,13 +10,21 @@
 - ``qc_marks`` and ``corrected_masks``: review outcomes attached to a result.
 - ``heartbeat``: one row the daemon rewrites every few seconds.
 
-Times are seconds since the epoch (REAL). A new schema version needs a migration step in
-:class:`flairwatch.ledger.store.Ledger`.
+Times are seconds since the epoch (REAL). A change to the tables bumps ``SCHEMA_VERSION`` and
+adds the statements that bring a ledger of the previous version up to it to ``MIGRATIONS``;
+:class:`flairwatch.ledger.core.LedgerCore` runs them in one transaction when it opens an
+older ledger. ``SCHEMA`` always creates the newest version directly.
 """
 
 from __future__ import annotations
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
+
+# version -> statements that turn a ledger of version - 1 into this version (run in order)
+MIGRATIONS: dict[int, tuple[str, ...]] = {
+    # 0.2.0: the job state for unusable input is 'refused' ('rejected' stays a QC decision only)
+    2: ("UPDATE jobs SET state = 'refused' WHERE state = 'rejected'",),
+}
 
 SCHEMA = """
 CREATE TABLE series (
