@@ -1,7 +1,7 @@
 """DICOM helpers shared by the discover/assemble/select/load tests.
 
 Reference files are read from the packages that ship them (pydicom test files, nibabel test
-data; see ../shared/CHECK-SOURCES.md); constructed datasets are built in memory with pydicom.
+data; see docs/sources.md); constructed datasets are built in memory with pydicom.
 """
 
 from __future__ import annotations

@@ -20,7 +20,7 @@ def _record(path: str, study: str, series: str, sop: str, size: int = 100) -> Fi
 
 def test_mr2_holds_three_series() -> None:
     # pydicom dicomdirtests 98892003/MR2: 7 images of three localizer series (1 + 3 + 3 images)
-    # from different studies (CHECK-SOURCES.md)
+    # from different studies (docs/sources.md)
     series, unusable = group_series(discover([DICOMDIR_TESTS / "98892003" / "MR2"]))
     assert unusable == []
     assert sorted(len(s.files) for s in series) == [1, 3, 3]

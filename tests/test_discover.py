@@ -95,7 +95,7 @@ def test_hostile_filesystem_calls(tmp_path: Path) -> None:
 
 
 def test_read_record_mr_small() -> None:
-    # pydicom test_files README / CHECK-SOURCES: MR_small is MR, 64x64, spacing 0.3125 mm,
+    # pydicom test_files README / docs/sources.md: MR_small is MR, 64x64, spacing 0.3125 mm,
     # slice thickness 0.8 mm.
     path = PYDICOM_FILES / "MR_small.dcm"
     record = read_record(path)

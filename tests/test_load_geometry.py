@@ -48,7 +48,7 @@ def _voxel_to_lps(affine: np.ndarray, i: float, j: float, k: float) -> np.ndarra
 
 
 def test_mr_small_matches_ps33_equation() -> None:
-    # CHECK-SOURCES.md: MR_small IPP [-83.9063, -91.2, 6.6406], spacing 0.3125, IOP [1,0,0,0,1,0];
+    # docs/sources.md: MR_small IPP [-83.9063, -91.2, 6.6406], spacing 0.3125, IOP [1,0,0,0,1,0];
     # two slices (the file and a copy 0.8 mm along the normal) make a volume
     ds = read_pydicom_file("MR_small.dcm")
     ipp = np.array([-83.9063, -91.2, 6.6406])
@@ -172,7 +172,7 @@ def test_jpeg_lossy_bad_codestream_is_refused_in_one_line() -> None:
 
 
 def test_nifti_affine_matches_nibabel() -> None:
-    # nibabel testing data anatomical.nii is LAS (CHECK-SOURCES.md); load_nifti stores LPS
+    # nibabel testing data anatomical.nii is LAS (docs/sources.md); load_nifti stores LPS
     path = Path(str(nibabel_data_path)) / "anatomical.nii"
     img = nib.load(path)
     assert isinstance(img, nib.Nifti1Image)
@@ -280,7 +280,7 @@ def test_pydicom_reads_what_we_wrote(tmp_path: Path) -> None:
 
 
 def test_jpeg_lossless_process_14_made_by_gdcm(tmp_path: Path) -> None:
-    # No JPEG Lossless (Process 14) file ships with pydicom (CHECK-SOURCES.md), so GDCM, inside
+    # No JPEG Lossless (Process 14) file ships with pydicom (docs/sources.md), so GDCM, inside
     # SimpleITK, writes one: three slices, lossless, so the decode must give back the input.
     rng = np.random.default_rng(1)
     stack = rng.integers(0, 3000, size=(3, 7, 5)).astype(np.int16)  # [k, j, i]

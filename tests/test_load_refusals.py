@@ -52,7 +52,7 @@ def _one_file_series(path: Path) -> Series:
 
 
 def test_gap_is_refused() -> None:
-    # pydicom dicomdirtests 77654033/CT2: 4 slices with a gap (CHECK-SOURCES.md); highdicom's
+    # pydicom dicomdirtests 77654033/CT2: 4 slices with a gap (docs/sources.md); highdicom's
     # get_volume_from_series refuses it too (a second validator)
     folder = DICOMDIR_TESTS / "77654033" / "CT2"
     (series,) = series_in(folder)
