@@ -25,9 +25,27 @@ DEFAULT_MIN_LESION_MM3 = 10.0
 DEFAULT_CONNECTIVITY = 26
 
 
-def default_model_manifest() -> Path:
-    """The manifest of the model shipped in ``models/`` (next to the package when installed from a checkout)."""
-    return Path(__file__).resolve().parent.parent / "models" / "wmh-synth" / "model.yaml"
+def is_model_name(ref: str | Path) -> bool:
+    """True for a bare model name (no folder part, no ``.yaml``/``.yml`` suffix), else a path.
+
+    Names are looked up in the model search path (:mod:`flairwatch.engine.models`).
+    """
+    text = str(ref)
+    return (
+        text not in ("", ".", "..")
+        and "/" not in text
+        and os.sep not in text
+        and not text.lower().endswith((".yaml", ".yml"))
+    )
+
+
+def model_reference(text: str, base_dir: Path | None) -> Path:
+    """The ``model`` setting as a path: a name stays a bare name, a relative manifest path is
+    taken relative to ``base_dir`` (the config file's folder)."""
+    p = Path(text).expanduser()
+    if is_model_name(text) or base_dir is None or p.is_absolute():
+        return p
+    return base_dir / p
 
 
 def cpus_available() -> int:
@@ -62,7 +80,7 @@ class Config:
     polling: bool = False
     workers: int = 1
     threads: int = 0  # 0 = the CPUs this process may use, divided among workers
-    model: Path = field(default_factory=default_model_manifest)
+    model: Path | None = None  # manifest path or model name; None = the default model
     threshold: float | None = None  # None = the manifest's
     min_lesion_mm3: float = DEFAULT_MIN_LESION_MM3
     connectivity: int = DEFAULT_CONNECTIVITY
@@ -77,7 +95,7 @@ class Config:
         return max(1, cpus_available() // max(1, self.workers))
 
 
-_PATH_KEYS = ("inbox", "results", "state", "quarantine", "model")
+_PATH_KEYS = ("inbox", "results", "state", "quarantine")
 
 
 def _number(key: str, value: Any, *, lo: float, hi: float | None = None) -> float:
@@ -133,6 +151,12 @@ def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None)
         if base_dir is not None and not p.is_absolute():
             p = base_dir / p
         values[key] = p
+    if raw.get("model") not in (None, ""):
+        if not isinstance(raw["model"], str):
+            raise ConfigInvalid(
+                f"config key 'model' must be a manifest path or a model name, got {raw['model']!r}"
+            )
+        values["model"] = model_reference(raw["model"], base_dir)
     if "settle_seconds" in raw:
         values["settle_seconds"] = _number("settle_seconds", raw["settle_seconds"], lo=0)
     if "rescan_seconds" in raw:

@@ -41,7 +41,8 @@ import numpy as np  # noqa: E402
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from flairwatch.config import Config, default_model_manifest  # noqa: E402
+from flairwatch.config import Config  # noqa: E402
+from flairwatch.engine.models import manifest_path  # noqa: E402
 from flairwatch.engine.pipeline import Engine, analyse  # noqa: E402
 from flairwatch.volume import Volume  # noqa: E402
 
@@ -99,7 +100,7 @@ def reference_seconds(a: np.ndarray, b: np.ndarray) -> float:
 
 def main(argv: Sequence[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="Time a WMH model on a 256x256x48 series.")
-    ap.add_argument("--model", type=Path, default=default_model_manifest(), help="model manifest")
+    ap.add_argument("--model", type=Path, default=manifest_path(None), help="model manifest")
     ap.add_argument("--runs", type=int, default=5, help="timed runs (median reported)")
     ap.add_argument("--threads", type=int, default=int(_THREADS), help="ONNX Runtime threads")
     ap.add_argument("--synthetic", action="store_true", help="numpy head instead of a phantom")

@@ -34,7 +34,7 @@ import yaml
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from flairwatch.config import default_model_manifest  # noqa: E402
+from flairwatch.engine.models import manifest_path  # noqa: E402
 from flairwatch.phantom.dicom_writer import write_series  # noqa: E402
 from flairwatch.volume import Volume  # noqa: E402
 
@@ -148,7 +148,7 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--series", type=int, default=100)
     ap.add_argument("--shape", default="256x256x48", help="columns x rows x slices")
-    ap.add_argument("--model", type=Path, default=default_model_manifest())
+    ap.add_argument("--model", type=Path, default=manifest_path(None))
     ap.add_argument("--workers", type=int, default=1)
     ap.add_argument("--work", type=Path, help="work folder (default: a temporary one)")
     ap.add_argument("--json", type=Path, help="also write the report here")

@@ -59,7 +59,8 @@ import numpy as np
 REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
-from flairwatch.config import Config, default_model_manifest  # noqa: E402
+from flairwatch.config import Config  # noqa: E402
+from flairwatch.engine.models import manifest_path  # noqa: E402
 from flairwatch.engine.pipeline import Engine  # noqa: E402
 from flairwatch.engine.postprocess import threshold_and_clean  # noqa: E402
 from flairwatch.phantom.params import GENERATOR_VERSION, PhantomParams, sample_params  # noqa: E402
@@ -508,7 +509,7 @@ def write_markdown(
 
 def main(argv: Sequence[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0] if __doc__ else None)
-    ap.add_argument("--model", type=Path, default=default_model_manifest(), help="model manifest")
+    ap.add_argument("--model", type=Path, default=manifest_path(None), help="model manifest")
     ap.add_argument("--cases", type=int, default=36, help="held-out cases (>= 30 for the gate)")
     ap.add_argument("--heldout", type=Path, default=WORK / "heldout", help="case-folder cache")
     ap.add_argument("--table", type=Path, default=WORK / "quality_table.md", help="Markdown out")

@@ -12,6 +12,7 @@ import pytest
 import SimpleITK as sitk
 
 from flairwatch.cli import main
+from flairwatch.notice import CAUTION
 from tests.series_fixtures import SeriesSpec, phantom_array, write_series
 
 
@@ -144,7 +145,8 @@ def test_usage_errors_exit_2_with_one_line(
 ) -> None:
     write_series(tmp_path, SeriesSpec())
     rc = main([a.replace("{tmp}", str(tmp_path)) for a in args])
-    err = capsys.readouterr().err.strip()
+    # the research-only caution is printed first as the command starts; the error is one line
+    err = capsys.readouterr().err.strip().replace(CAUTION, "").strip()
     assert rc == 2
     assert message in err and len(err.splitlines()) == 1
 

@@ -59,6 +59,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     show_caution()
     from flairwatch.engine.manifest import load_manifest
+    from flairwatch.engine.models import manifest_path
     from flairwatch.ledger.store import Ledger
     from flairwatch.research import rerun
     from flairwatch.research.change_report import Limits
@@ -71,7 +72,7 @@ def run(args: argparse.Namespace) -> int:
     cfg = config_from_args(args, "results", "state")
     if cfg.state is None or cfg.results is None:
         raise ConfigInvalid("reprocess needs 'state' and 'results' in the config file")
-    manifest = load_manifest(cfg.model)
+    manifest = load_manifest(manifest_path(cfg.model))
     name, version = manifest.name, manifest.version
     limits = Limits(volume_ml=args.flag_volume_ml, percent=args.flag_percent, dice=args.flag_dice)
     since = parse_since(args.since) if args.since else None

@@ -29,6 +29,7 @@ from flairwatch.config import Config, Identifiers
 from flairwatch.engine import convert, results
 from flairwatch.engine.infer import Segmenter
 from flairwatch.engine.manifest import ModelManifest, load_manifest
+from flairwatch.engine.models import manifest_path
 from flairwatch.engine.postprocess import (
     LESION_COLUMNS,
     LesionResult,
@@ -246,7 +247,9 @@ class Engine:
 
     def __init__(self, cfg: Config, *, manifest: ModelManifest | None = None) -> None:
         self.cfg = cfg
-        self.manifest = manifest if manifest is not None else load_manifest(cfg.model)
+        self.manifest = (
+            manifest if manifest is not None else load_manifest(manifest_path(cfg.model))
+        )
         self.segmenter = Segmenter(self.manifest, threads=cfg.threads_per_worker())
         self.threshold = cfg.threshold if cfg.threshold is not None else self.manifest.threshold
 

@@ -19,6 +19,7 @@ from typing import Any
 
 from flairwatch import keys
 from flairwatch.config import Config
+from flairwatch.engine.models import manifest_path
 from flairwatch.errors import ConfigInvalid
 from flairwatch.ledger.store import Ledger
 from flairwatch.research.change_report import Limits, write_report
@@ -52,7 +53,7 @@ def run_cluster(ledger: Ledger, cfg: Config, address: str, name: str, version: s
     client, cluster = connect(address)
     try:
         finished, failures = run_on_cluster(
-            ledger, client, cfg, cfg.model, secret, name=name, version=version,
+            ledger, client, cfg, manifest_path(cfg.model), secret, name=name, version=version,
             on_step=lambda job_id, outcome: progress.step(f"job {job_id} {outcome}"),
         )  # fmt: skip
     finally:
