@@ -21,7 +21,8 @@ from flairwatch.config import Config
 from flairwatch.daemon.inbox import Known, Step, plan, signature
 from flairwatch.daemon.observe import OverflowHook
 from flairwatch.daemon.status import gather, problems, render
-from flairwatch.daemon.watch import Daemon, Tuning, retry_delay
+from flairwatch.daemon.tuning import Tuning, retry_delay
+from flairwatch.daemon.watch import Daemon
 from flairwatch.daemon.workers import Report, classify
 from flairwatch.errors import InputRejected, StageFailed
 from flairwatch.ledger.store import JobState, Ledger
@@ -293,7 +294,7 @@ def test_transient_failures_back_off_then_give_up(tmp_path: Path) -> None:
         for attempt in (1, 2, 3):
             claimed = led.claim_next(now, "m", "1", 5)
             assert claimed is not None and claimed.attempts == attempt
-            daemon.record(Report("failed", job.id, "No space left on device", True), now)
+            daemon.jobs.record(Report("failed", job.id, "No space left on device", True), now)
             after = led.job(job.id)
             if attempt < 3:
                 assert after.state is JobState.QUEUED
@@ -306,7 +307,7 @@ def test_transient_failures_back_off_then_give_up(tmp_path: Path) -> None:
         _, job2 = led.new_revision("1.2", "9.2", _fixed_keys("e2"), 0.0)
         led.move_job(job2.id, [JobState.SETTLING], JobState.QUEUED, 0.0)
         assert led.claim_next(now, "m", "1", 5) is not None
-        daemon.record(Report("refused", job2.id, "slice gap"), now)
+        daemon.jobs.record(Report("refused", job2.id, "slice gap"), now)
         assert led.job(job2.id).state is JobState.REFUSED
 
 

@@ -1,0 +1,107 @@
+"""The daemon's job half: hand queued jobs to idle workers and record what workers report.
+
+done: recorded after the result folder is durably in place, then the series folder points at it
+and the gallery is refreshed; refused: bad input, files left in place or moved to quarantine;
+failed: retried with exponential back-off when transient, recorded for good otherwise.
+"""
+
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+from typing import Any
+
+from flairwatch.config import Config
+from flairwatch.daemon.inbox import Scan, revision_series
+from flairwatch.daemon.inputs import InboxFiles
+from flairwatch.daemon.tuning import Tuning, retry_delay
+from flairwatch.daemon.workers import Report, Task, WorkerPool
+from flairwatch.engine import results
+from flairwatch.ledger.store import JobRow, JobState, Ledger
+from flairwatch.research.gallery import GALLERY_FOLDER, refresh_study
+
+log = logging.getLogger("flairwatch.daemon.watch")
+
+
+class Dispatcher:
+    """Claims jobs for workers and records their outcomes in the ledger."""
+
+    def __init__(self, cfg: Config, ledger: Ledger, files: InboxFiles, tuning: Tuning) -> None:
+        assert cfg.results is not None
+        self.cfg, self.ledger, self.files, self.tuning = cfg, ledger, files, tuning
+        self.results = cfg.results
+        self.model: dict[str, Any] = {}
+        self.unfinished = 0  # series of this run that failed or were refused
+
+    def dispatch(self, pool: WorkerPool, scan: Scan | None, now: float) -> None:
+        for slot in pool.idle():
+            job = self.ledger.claim_next(
+                now,
+                self.model["name"],
+                self.model["version"],
+                slot.process.pid or 0,
+                min_priority=0,  # archive re-runs (negative priority) belong to 'reprocess'
+            )
+            if job is None:
+                return
+            scanned = scan.series.get((job.study_uid, job.series_uid)) if scan else None
+            paths = {f.path for f in self.ledger.revision_files(job.series_id)}
+            series = revision_series(scanned, paths) if scanned else None
+            label = self.ledger.series(job.series_id).series_key
+            if series is None:
+                self._finish_bad(job, "its files are no longer in the inbox", now, quarantine=False)
+                continue
+            log.info("series %s: running (attempt %d)", label, job.attempts)
+            pool.submit(slot, Task(job.id, series, job.revision))
+
+    def record(self, report: Report, now: float) -> bool:
+        """Record a worker's report; True when it ended a job (the inbox may need a rescan)."""
+        if report.kind not in ("done", "refused", "failed", "crashed"):
+            return False
+        job = self.ledger.job(report.job_id)
+        label = self.ledger.series(job.series_id).series_key
+        if report.kind == "done":
+            self.ledger.finish_done(
+                job.id, report.result_dir, report.summary, adopted=report.adopted,
+                seconds=report.seconds, now=now, rss_kb=report.rss_kb,
+            )  # fmt: skip
+            log.info(
+                "series %s: done in %.1f s%s, WMH %s mL, worker RSS %d MiB",
+                label, report.seconds, " (adopted)" if report.adopted else "",
+                report.summary.get("lesion_volume_ml"), report.rss_kb // 1024,
+            )  # fmt: skip
+            # the daemon's own model is the current one: point the series folder at it
+            version_dir = Path(report.result_dir)
+            results.set_current(version_dir.parent, version_dir.name)
+            refresh_study(
+                self.ledger, self.results / GALLERY_FOLDER, job.series_id,
+                connectivity=self.cfg.connectivity, now=now,
+            )  # fmt: skip
+            self.files.delete(job.series_id)
+            return True
+        transient = report.kind == "crashed" or report.transient
+        if transient and job.attempts < self.tuning.max_attempts:
+            delay = retry_delay(job.attempts, self.tuning)
+            self.ledger.move_job(
+                job.id, [JobState.RUNNING], JobState.QUEUED, now,
+                error=report.message, not_before=now + delay,
+            )  # fmt: skip
+            log.warning("series %s: %s; retry in %.0f s", label, report.message, delay)
+            return True
+        message = report.message
+        if transient:
+            message = f"gave up after {job.attempts} attempts: {message}"
+        self._finish_bad(job, message, now, refused=report.kind == "refused")
+        return True
+
+    def _finish_bad(
+        self, job: JobRow, message: str, now: float, *, refused: bool = True,
+        quarantine: bool = True,
+    ) -> None:  # fmt: skip
+        state = JobState.REFUSED if refused else JobState.FAILED
+        self.ledger.move_job(job.id, [JobState.RUNNING], state, now, error=message)
+        label = self.ledger.series(job.series_id).series_key
+        log.error("series %s: %s: %s", label, state.value, message)
+        self.unfinished += 1
+        if quarantine and self.cfg.quarantine is not None:
+            self.files.quarantine(job)
