@@ -44,12 +44,24 @@ def add_model_options(p: argparse.ArgumentParser) -> None:
 
 
 def config_from_args(args: argparse.Namespace, *extra: str) -> Config:
-    """Load ``--config`` and apply every flag of the same name that was given."""
+    """Load ``--config`` and apply every flag of the same name that was given.
+
+    For commands with the model options, the ``model`` setting (a name, a path or empty) is
+    resolved here to its manifest path, so a wrong name fails at once with one line, and every
+    worker process uses the same manifest.
+    """
+    from dataclasses import replace
+
     from flairwatch.config import load_config, with_overrides
 
     cfg = load_config(getattr(args, "config", None))
     names = ("model", "threshold", "min_lesion_mm3", "connectivity", "threads", *extra)
-    return with_overrides(cfg, **{n: getattr(args, n, None) for n in names})
+    cfg = with_overrides(cfg, **{n: getattr(args, n, None) for n in names})
+    if hasattr(args, "model"):
+        from flairwatch.engine.models import manifest_path
+
+        cfg = replace(cfg, model=manifest_path(cfg.model))
+    return cfg
 
 
 def say(text: str) -> None:

@@ -181,7 +181,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def run(args: argparse.Namespace) -> int:
     if args.out.exists() and not args.out.is_dir():
         raise ConfigInvalid(f"--out {args.out} is a file; choose a folder")
-    model = args.model
-    if model is not None and not model.is_file():
+    from flairwatch.engine.models import manifest_path
+
+    model = manifest_path(args.model)  # a name or path; None = the default model
+    if not model.is_file():
         raise ConfigInvalid(f"--model {model} does not exist; pass a model manifest (.yaml)")
     return run_demo(args.out, model, say=lambda s: print(s, flush=True))
