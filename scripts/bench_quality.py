@@ -65,15 +65,10 @@ from flairwatch.engine.pipeline import Engine  # noqa: E402
 from flairwatch.engine.postprocess import threshold_and_clean  # noqa: E402
 from flairwatch.phantom.params import GENERATOR_VERSION, PhantomParams, sample_params  # noqa: E402
 from flairwatch.research import metrics  # noqa: E402
+from flairwatch.research.cases import find_case_folders  # noqa: E402
 from flairwatch.research.report_plots import markdown_table  # noqa: E402
-from flairwatch.research.validate import (  # noqa: E402
-    CaseResult,
-    Segment,
-    Segmentation,
-    find_case_folders,
-    model_segment,
-    score_folders,
-)
+from flairwatch.research.scoring import CaseResult, Segment, Segmentation  # noqa: E402
+from flairwatch.research.validate import model_segment, score_folders  # noqa: E402
 from flairwatch.volume import Volume  # noqa: E402
 
 # Load bins of metrics.LOAD_BIN_NAMES and the generator lesion loads (mL) drawn for each,

@@ -18,19 +18,18 @@ from scipy import ndimage
 from scipy.spatial import cKDTree
 
 from flairwatch.errors import InputRejected
+from flairwatch.research.distances import hd95, percentile_hausdorff
 from flairwatch.research.metrics import (
     LOAD_BIN_NAMES,
     CaseScores,
     dice,
-    hd95,
     lesion_counts,
     lesion_recall_min_size,
     load_bin,
-    percentile_hausdorff,
     score_case,
-    summarise,
     volume_difference_pct,
 )
+from flairwatch.research.scoring import summarise
 
 
 def _img(mask: np.ndarray, spacing: tuple[float, float, float]) -> sitk.Image:

@@ -182,7 +182,7 @@ def test_measure_mask_against_simpleitk(connectivity: int, fully: bool) -> None:
 def test_corrections_become_case_folders_that_validate_reads(
     archive: Archive, tmp_path: Path, tiny_model_manifest: Path
 ) -> None:
-    from flairwatch.research.validate import read_case
+    from flairwatch.research.cases import read_case
 
     entry = archive.entries[0]
     edited = _edited_mask(entry, tmp_path / "edited.nii.gz")

@@ -20,9 +20,9 @@ from PIL import Image
 from scipy import ndimage
 
 from flairwatch.cli import main
-from flairwatch.errors import InputRejected
+from flairwatch.errors import ConfigInvalid, InputRejected
 from flairwatch.research import metrics
-from flairwatch.research.validate import case_facts, read_case
+from flairwatch.research.cases import LabelMap, case_facts, parse_label_map, read_case
 from flairwatch.volume import Volume
 from tests.series_fixtures import SeriesSpec, phantom_array, write_series
 
@@ -93,8 +93,11 @@ def cases(tmp_path: Path) -> Path:
     )
     # reference moved one voxel along i: each row of a blob loses one voxel of overlap
     dicom_case(root, "b-shifted", np.roll(truth, 1, axis=0))
-    # blob 2 marked "ignore" (label 2): the model's voxels there must not count at all
-    dicom_case(root, "c-ignore", blobs)
+    # blob 2 in the exclusion mask: the model's voxels there must not count at all
+    ignore = dicom_case(root, "c-ignore", blobs == 1)
+    write_nifti(
+        ignore / "exclude_mask.nii.gz", (blobs == 2).astype(np.uint8), spec_affine_ras(SPEC)
+    )
     # a NIfTI image on a 1 x 1 x 2 mm grid
     nifti = root / "d-nifti"
     nifti.mkdir(parents=True)
@@ -218,7 +221,7 @@ def test_reference_on_another_grid_or_with_odd_labels_is_refused(cases: Path) ->
     bad = np.zeros((64, 64, 12), dtype=np.uint8)
     bad[0, 0, 0] = 3
     write_nifti(case / "wmh_reference.nii.gz", bad, spec_affine_ras(SPEC))
-    with pytest.raises(InputRejected, match="other than 0, 1 and 2"):
+    with pytest.raises(InputRejected, match=r"label\(s\) \[3\] that the label map does not name"):
         read_case(case)
     write_nifti(case / "wmh_reference.nii.gz", bad[:, :, :10], spec_affine_ras(SPEC))
     with pytest.raises(InputRejected, match="does not lie on the image grid"):
@@ -271,3 +274,100 @@ def test_bench_baseline_marks_voxels_above_k_times_brain_median() -> None:
     # the minimum size rule: blob 2 is 45 mm^3, dropped when the minimum is 50 mm^3
     small = bench.baseline_mask(volume, head, 1.5, min_lesion_mm3=50.0, connectivity=26)
     assert small.sum() == BLOB1_VOXELS
+
+
+# ---- label layouts: our own (0/1 files) and others read through --label-map
+
+
+def test_older_multi_label_layout_is_refused_with_the_map_to_use(cases: Path) -> None:
+    legacy = dicom_case(cases, "e-legacy", blob_labels())  # 0, 1 WMH, 2 not scored, one file
+    with pytest.raises(InputRejected, match="--label-map wmh=1,exclude=2"):
+        read_case(legacy)
+
+
+def test_label_map_reads_the_older_layout_like_our_own(cases: Path) -> None:
+    legacy = dicom_case(cases, "e-legacy", blob_labels())
+    old = read_case(legacy, parse_label_map("wmh=1,exclude=2"))
+    own = read_case(cases / "c-ignore")
+    assert np.array_equal(old.reference, own.reference)
+    assert old.exclude is not None and own.exclude is not None
+    assert np.array_equal(old.exclude, own.exclude)
+    assert old.ventricles is None and own.ventricles is None
+
+
+def test_label_map_file_roles_and_separate_files(cases: Path) -> None:
+    blobs = blob_labels()
+    case = dicom_case(cases, "f-labels", np.zeros_like(blobs))
+    labels = np.where(blobs == 1, 3, np.where(blobs == 2, 4, 0)).astype(np.uint8)
+    write_nifti(case / "labels.nii.gz", labels, spec_affine_ras(SPEC))
+    read = read_case(case, parse_label_map("file=labels.nii.gz,wmh=1+3,ventricles=4"))
+    assert np.array_equal(read.reference, blobs == 1)
+    assert read.ventricles is not None and np.array_equal(read.ventricles, blobs == 2)
+    assert read.exclude is None
+    # a separate exclusion file still counts, joined with the map's role
+    first_slice = np.zeros_like(blobs)
+    first_slice[:, :, 0] = 1
+    write_nifti(case / "exclude_mask.nii.gz", first_slice, spec_affine_ras(SPEC))
+    read = read_case(case, parse_label_map("file=labels.nii.gz,wmh=3,exclude=4"))
+    assert read.exclude is not None
+    assert np.array_equal(read.exclude, (blobs == 2) | (first_slice == 1))
+    with pytest.raises(InputRejected, match=r"does not name.*now file=labels\.nii\.gz,wmh=3"):
+        read_case(case, parse_label_map("file=labels.nii.gz,wmh=3"))
+
+
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [
+        ("wmh=1,exclude=2", LabelMap(labels={"wmh": frozenset({1}), "exclude": frozenset({2})})),
+        (
+            " WMH = 1+3 , ventricles=4 ",
+            LabelMap(labels={"wmh": frozenset({1, 3}), "ventricles": frozenset({4})}),
+        ),
+        ("file=x.nii.gz,wmh=5", LabelMap("x.nii.gz", {"wmh": frozenset({5})})),
+    ],
+)
+def test_label_map_syntax(text: str, expected: LabelMap) -> None:
+    got = parse_label_map(text)
+    assert got == expected
+    assert parse_label_map(got.describe()) == got  # describe() writes the same syntax back
+
+
+@pytest.mark.parametrize(
+    ("text", "message"),
+    [
+        ("exclude=2", "must say which labels are WMH"),
+        ("wmh=1,lesion=2", "role 'lesion' is unknown"),
+        ("wmh=1,exclude=1", "label 1 to both wmh and exclude"),
+        ("wmh=0", "label 0 is always background"),
+        ("wmh=1,wmh=2", "names wmh twice"),
+        ("wmh=one", "whole numbers joined by +"),
+        ("wmh", "is not ROLE=LABELS"),
+        ("wmh=1,file=../x.nii.gz", "give a file name inside each case"),
+    ],
+)
+def test_bad_label_maps_are_one_line_errors(text: str, message: str) -> None:
+    with pytest.raises(ConfigInvalid, match=message) as err:
+        parse_label_map(text)
+    assert "\n" not in str(err.value)
+
+
+def test_validate_label_map_option(
+    cases: Path, tmp_path: Path, tiny_model_manifest: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    legacy = tmp_path / "legacy"
+    dicom_case(legacy, "c-ignore", blob_labels())
+    model = ["--model", str(tiny_model_manifest)]
+    out = tmp_path / "report"
+    argv = ["validate", "--cases", str(legacy), "--out", str(out), *model]
+    assert main([*argv, "--label-map", "wmh=1,exclude=2"]) == 0
+    with open(out / "cases.csv", encoding="utf-8", newline="") as fh:
+        (row,) = list(csv.DictReader(fh))
+    assert float(row["dice"]) == 1.0 and int(row["reference_lesions"]) == 1
+    summary = json.loads((out / "summary.json").read_text(encoding="utf-8"))
+    assert summary["label_map"] == "wmh=1,exclude=2"
+    capsys.readouterr()
+    assert main([*argv, "--label-map", "wmh=1,exclude=x"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == [
+        "flairwatch: error: --label-map exclude=x: labels are whole numbers joined by +, e.g. exclude=1+3"
+    ]

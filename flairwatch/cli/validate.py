@@ -26,13 +26,24 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
         type=Path,
         help="output folder (default: validation-<model> beside the cases folder)",
     )
+    p.add_argument(
+        "--label-map",
+        metavar="MAP",
+        help="read references of another layout: ROLE=LABELS items, e.g. 'wmh=1,exclude=2' for "
+        "the older multi-label convention; roles wmh, exclude, ventricles; labels joined by +; "
+        "'file=NAME' names the labelled file (default: wmh_reference.nii.gz holding 0/1, with "
+        "optional exclude_mask.nii.gz and ventricles_reference.nii.gz)",
+    )
     add_model_options(p)
     p.set_defaults(func=run)
 
 
 def run(args: argparse.Namespace) -> int:
     from flairwatch.engine.pipeline import Engine
+    from flairwatch.research.cases import OWN_LAYOUT, parse_label_map
     from flairwatch.research.validate import run_validate
 
+    label_map = parse_label_map(args.label_map) if args.label_map else OWN_LAYOUT
     cfg = config_from_args(args)
-    return run_validate(args.cases, args.out, Engine(cfg), say=say, warn=warn)
+    engine = Engine(cfg)
+    return run_validate(args.cases, args.out, engine, say=say, warn=warn, label_map=label_map)

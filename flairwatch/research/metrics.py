@@ -17,9 +17,11 @@ challenge):
   detected / reference lesions, precision = correct / segmentation lesions, F1 their harmonic
   mean.
 
-The reference may carry label 2 ("ignore", other pathology): those voxels are removed from both
-reference and segmentation before any figure is computed; label 1 is WMH. Arrays are 3-D with axes
-(i, j, k) and ``spacing_mm`` gives the voxel size along them in mm.
+Voxels not to be scored (other pathology, artefacts) come as a separate boolean ``exclude`` mask
+and are removed from both reference and segmentation before any figure is computed. The
+reference is 0/1 WMH; for callers that still pass the older multi-label convention, a reference
+label 2 is read as excluded too. Arrays are 3-D with axes (i, j, k) and ``spacing_mm`` gives the
+voxel size along them in mm.
 
 Edge cases (our choices, stated so reports can be read without the code):
 
@@ -36,15 +38,14 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 
 import numpy as np
 import numpy.typing as npt
-from scipy import ndimage
-from scipy.spatial import cKDTree
 
 from flairwatch.engine.postprocess import at_least, connected_components
 from flairwatch.errors import InputRejected
+from flairwatch.research.distances import hd95, voxel_ml
 
 logger = logging.getLogger(__name__)
 
@@ -67,7 +68,7 @@ LOAD_BIN_NAMES: tuple[str, ...] = ("0", *(name for name, _, _ in LOAD_BINS))
 class CaseScores:
     """Quality figures of one segmentation against its reference (module docstring for rules).
 
-    Volumes are in mL after removing the reference's ignore label. ``lesion_recall``,
+    Volumes are in mL after removing the excluded voxels. ``lesion_recall``,
     ``reference_lesions`` and ``detected_lesions`` count only reference lesions of at least the
     minimum size passed to :func:`score_case`; ``lesion_f1`` always uses every lesion.
     ``false_positive_ml`` is the segmentation volume outside the reference.
@@ -123,16 +124,21 @@ class LesionCounts:
 
 
 def prepare(
-    reference: npt.ArrayLike, segmentation: npt.ArrayLike
+    reference: npt.ArrayLike,
+    segmentation: npt.ArrayLike,
+    exclude: npt.ArrayLike | None = None,
 ) -> tuple[npt.NDArray[np.bool_], npt.NDArray[np.bool_]]:
-    """Binary reference and segmentation with the reference's ignore voxels removed from both.
+    """Binary reference and segmentation with the excluded voxels removed from both.
 
     Parameters
     ----------
     reference : array_like of int, shape (I, J, K)
-        0 background, 1 WMH, 2 ignore. A boolean array is read as 0/1.
+        0 background, 1 WMH (2, the older convention's "ignore", is read as excluded).
+        A boolean array is read as 0/1.
     segmentation : array_like, shape (I, J, K)
         Non-zero voxels are WMH.
+    exclude : array_like of bool, shape (I, J, K), optional
+        Non-zero voxels are not scored.
 
     Raises
     ------
@@ -152,17 +158,18 @@ def prepare(
         if odd.size:
             raise InputRejected(
                 f"reference mask has labels {np.unique(odd).tolist()[:5]}; "
-                "use 0 (background), 1 (WMH) and 2 (ignore) only"
+                "use 0 (background) and 1 (WMH), and a separate mask for voxels not to score"
             )
     keep = ref != REFERENCE_IGNORE
+    if exclude is not None:
+        ex = np.asarray(exclude)
+        if ex.shape != ref.shape:
+            raise InputRejected(
+                f"exclusion mask shape {ex.shape} differs from the reference's {ref.shape}; "
+                "put it on the image grid"
+            )
+        keep &= ex == 0
     return (ref == REFERENCE_LESION) & keep, (seg != 0) & keep
-
-
-def _voxel_ml(spacing_mm: Sequence[float]) -> float:
-    spacing = tuple(float(s) for s in spacing_mm)
-    if len(spacing) != 3 or not all(math.isfinite(s) and s > 0 for s in spacing):
-        raise ValueError(f"spacing_mm must be three positive sizes in mm, got {spacing_mm!r}")
-    return spacing[0] * spacing[1] * spacing[2] / 1000.0
 
 
 def dice(a: npt.ArrayLike, b: npt.ArrayLike) -> float:
@@ -176,55 +183,6 @@ def dice(a: npt.ArrayLike, b: npt.ArrayLike) -> float:
     if total == 0:
         return 1.0
     return 2.0 * int(np.count_nonzero(a_bin & b_bin)) / total
-
-
-def border(mask: npt.ArrayLike) -> npt.NDArray[np.bool_]:
-    """Foreground voxels with a face neighbour (6-connectivity) in background or off the array."""
-    fg = np.asarray(mask) != 0
-    interior = ndimage.binary_erosion(fg, structure=ndimage.generate_binary_structure(3, 1))
-    return fg & ~interior
-
-
-def directed_border_distances(
-    a: npt.ArrayLike, b: npt.ArrayLike, spacing_mm: Sequence[float]
-) -> npt.NDArray[np.float64]:
-    """Distances in mm from each border voxel of ``a`` to the nearest border voxel of ``b``.
-
-    Nearest neighbours come from a k-d tree over the border voxel centres scaled by the spacing
-    (a distance transform of the whole grid is far slower on full-size volumes). Empty when ``a``
-    is empty; raises ValueError when ``b`` is empty.
-    """
-    _voxel_ml(spacing_mm)  # validates the spacing
-    scale = np.asarray(spacing_mm, dtype=np.float64)
-    points_b = np.argwhere(border(b)) * scale
-    if points_b.size == 0:
-        raise ValueError("the second mask is empty: no distance is defined")
-    points_a = np.argwhere(border(a)) * scale
-    if points_a.size == 0:
-        return np.zeros(0)
-    distance, _ = cKDTree(points_b).query(points_a)
-    return np.asarray(distance, dtype=np.float64)
-
-
-def percentile_hausdorff(
-    a: npt.ArrayLike, b: npt.ArrayLike, spacing_mm: Sequence[float], percentile: float = 95.0
-) -> float:
-    """Symmetric percentile Hausdorff distance between mask borders, in mm.
-
-    The larger of the two directed ``percentile``-th percentiles (numpy's linear interpolation);
-    ``percentile=100`` gives the classic Hausdorff distance between the borders. NaN when either
-    mask is empty.
-    """
-    if not (np.any(np.asarray(a)) and np.any(np.asarray(b))):
-        return math.nan
-    ab = directed_border_distances(a, b, spacing_mm)
-    ba = directed_border_distances(b, a, spacing_mm)
-    return float(max(np.percentile(ab, percentile), np.percentile(ba, percentile)))
-
-
-def hd95(a: npt.ArrayLike, b: npt.ArrayLike, spacing_mm: Sequence[float]) -> float:
-    """95th-percentile Hausdorff distance in mm (module docstring); NaN when either is empty."""
-    return percentile_hausdorff(a, b, spacing_mm, 95.0)
 
 
 def volume_difference_pct(reference: npt.ArrayLike, segmentation: npt.ArrayLike) -> float:
@@ -289,7 +247,7 @@ def match_lesions(
     connectivity : {6, 18, 26}
         Neighbourhood that joins voxels into one lesion.
     """
-    voxel_mm3 = _voxel_ml(spacing_mm) * 1000.0
+    voxel_mm3 = voxel_ml(spacing_mm) * 1000.0
     ref = np.asarray(reference) != 0
     seg = np.asarray(segmentation) != 0
     ref_labels, n_ref = connected_components(ref, connectivity)
@@ -331,12 +289,13 @@ def lesion_recall_min_size(
     min_mm3: float,
     *,
     connectivity: int = 26,
+    exclude: npt.ArrayLike | None = None,
 ) -> float:
-    """Lesion recall over reference lesions of at least ``min_mm3`` mm^3 (label 2 ignored).
+    """Lesion recall over reference lesions of at least ``min_mm3`` mm^3 (``exclude`` not scored).
 
     NaN when the reference has no lesion that large.
     """
-    ref, seg = prepare(reference, segmentation)
+    ref, seg = prepare(reference, segmentation, exclude)
     counts = lesion_counts(
         ref, seg, spacing_mm, connectivity=connectivity, min_reference_mm3=min_mm3
     )
@@ -365,13 +324,14 @@ def score_case(
     *,
     connectivity: int = 26,
     min_lesion_mm3_for_recall: float = 0.0,
+    exclude: np.ndarray | None = None,
 ) -> CaseScores:
     """All quality figures of one case.
 
     Parameters
     ----------
     reference : ndarray of int, shape (I, J, K)
-        0 background, 1 WMH, 2 ignore (removed from both masks before scoring).
+        0 background, 1 WMH (2, the older convention's "ignore", counts as excluded).
     segmentation : ndarray, shape (I, J, K)
         Non-zero = WMH, on the reference's grid.
     spacing_mm : tuple of 3 float
@@ -380,13 +340,15 @@ def score_case(
         Lesion definition for the lesion-wise figures.
     min_lesion_mm3_for_recall : float
         Only reference lesions of at least this volume (mm^3) count for lesion recall.
+    exclude : ndarray of bool, shape (I, J, K), optional
+        Voxels removed from both masks before scoring.
     """
-    voxel_ml = _voxel_ml(spacing_mm)
-    ref, seg = prepare(reference, segmentation)
+    ml = voxel_ml(spacing_mm)
+    ref, seg = prepare(reference, segmentation, exclude)
     match = match_lesions(ref, seg, spacing_mm, connectivity=connectivity)
     counts = match.counts()
     recall_counts = match.counts(min_lesion_mm3_for_recall)
-    reference_ml = int(np.count_nonzero(ref)) * voxel_ml
+    reference_ml = int(np.count_nonzero(ref)) * ml
     return CaseScores(
         dice=dice(ref, seg),
         hd95_mm=hd95(ref, seg, spacing_mm),
@@ -394,48 +356,9 @@ def score_case(
         lesion_recall=recall_counts.recall,
         lesion_f1=counts.f1,
         reference_ml=reference_ml,
-        segmentation_ml=int(np.count_nonzero(seg)) * voxel_ml,
-        false_positive_ml=int(np.count_nonzero(seg & ~ref)) * voxel_ml,
+        segmentation_ml=int(np.count_nonzero(seg)) * ml,
+        false_positive_ml=int(np.count_nonzero(seg & ~ref)) * ml,
         reference_lesions=recall_counts.reference_lesions,
         detected_lesions=recall_counts.detected_lesions,
         load_bin=load_bin(reference_ml),
     )
-
-
-_MEDIAN_FIELDS: tuple[str, ...] = tuple(
-    f.name for f in fields(CaseScores) if f.type in ("float", float)
-)
-
-
-def _group_summary(scores: Sequence[CaseScores]) -> dict[str, float | int]:
-    out: dict[str, float | int] = {"cases": len(scores)}
-    for name in _MEDIAN_FIELDS:
-        values = np.array([getattr(s, name) for s in scores], dtype=np.float64)
-        finite = values[~np.isnan(values)]
-        out[f"median_{name}"] = float(np.median(finite)) if finite.size else math.nan
-    reference = sum(s.reference_lesions for s in scores)
-    detected = sum(s.detected_lesions for s in scores)
-    out["reference_lesions"] = reference
-    out["detected_lesions"] = detected
-    out["pooled_lesion_recall"] = detected / reference if reference else math.nan
-    return out
-
-
-def summarise(scores: Sequence[CaseScores]) -> dict[str, object]:
-    """Medians overall and per lesion-load bin.
-
-    Returns
-    -------
-    dict
-        ``{"overall": group, "by_load_bin": {bin: group for every bin in LOAD_BIN_NAMES}}`` where
-        a group holds ``cases``, ``median_<field>`` for each float field of CaseScores (NaN values
-        left out; NaN when none is left), ``reference_lesions``, ``detected_lesions`` and
-        ``pooled_lesion_recall`` (detected / reference lesions summed over the cases).
-    """
-    return {
-        "overall": _group_summary(scores),
-        "by_load_bin": {
-            name: _group_summary([s for s in scores if s.load_bin == name])
-            for name in LOAD_BIN_NAMES
-        },
-    }

@@ -24,7 +24,6 @@ applied after the report); a corrected mask stays the reported result.
 from __future__ import annotations
 
 import logging
-import os
 import re
 import time
 from collections.abc import Callable, Sequence
@@ -134,50 +133,21 @@ def queue_reruns(
     return added, pending
 
 
-def _alive(pid: int | None) -> bool:
-    if not pid:
-        return False
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
-
-
 def requeue_orphans(ledger: Ledger, name: str, version: str, now: float) -> int:
-    """Re-run jobs left running by a process that is gone go back to the queue."""
-    rows = ledger.query(
-        "SELECT id, worker_pid FROM jobs WHERE state = ? AND priority < 0"
-        " AND model_name = ? AND model_version = ?",
-        (JobState.RUNNING.value, name, version),
-    )
-    n = 0
-    for job_id, pid in rows:
-        if not _alive(pid) and ledger.move_job(
-            job_id, [JobState.RUNNING], JobState.QUEUED, now, worker_pid=None
-        ):
-            n += 1
-    return n
+    """Running jobs whose owner is gone (its lock is free) go back to the queue.
+
+    Ownership is by lock, not by pid (:mod:`flairwatch.ledger.owners`); ``name`` and ``version``
+    are kept for the callers, every orphan is requeued whoever left it.
+    """
+    return len(ledger.requeue_orphans(now))
 
 
 def claim_rerun(ledger: Ledger, name: str, version: str, pid: int, now: float) -> JobRow | None:
-    """Take the oldest queued re-run job for this model (never a new arrival's job)."""
-    with ledger.transaction() as db:
-        row = db.execute(
-            """SELECT id FROM jobs WHERE state = ? AND priority < 0 AND model_name = ?
-               AND model_version = ? AND not_before <= ? ORDER BY priority DESC, id LIMIT 1""",
-            (JobState.QUEUED.value, name, version, now),
-        ).fetchone()
-        if row is None:
-            return None
-        db.execute(
-            "UPDATE jobs SET state = ?, attempts = attempts + 1, started = ?, worker_pid = ?"
-            " WHERE id = ?",
-            (JobState.RUNNING.value, now, pid, row[0]),
-        )
-    return ledger.job(row[0])
+    """Take the oldest queued re-run job for this model (never a new arrival's job).
+
+    The job is owned by this process's run lock, so the daemon requeues it only if we die.
+    """
+    return ledger.claim_next(now, name, version, pid, max_priority=-1)
 
 
 def remaining(ledger: Ledger, name: str, version: str) -> int:

@@ -27,7 +27,7 @@ from flairwatch.errors import ConfigInvalid
 from flairwatch.notice import BANNER, NOTICE_FILE, NOTICE_TEXT
 from flairwatch.research import metrics
 from flairwatch.research.report_plots import markdown_table, scatter_log_x, strip_by_group
-from flairwatch.research.validate import (
+from flairwatch.research.scoring import (
     LARGE_LESION_MM3,
     CaseFailure,
     CaseResult,
@@ -55,6 +55,7 @@ CASE_COLUMNS: tuple[str, ...] = (
     "reference_lesions_30mm3",
     "detected_lesions_30mm3",
     "intracranial_dice",
+    "ventricles_dice",
     "seconds",
     "warnings",
 )
@@ -86,6 +87,7 @@ def case_row(r: CaseResult) -> dict[str, object]:
         "reference_lesions_30mm3": r.large_reference_lesions,
         "detected_lesions_30mm3": r.large_detected_lesions,
         "intracranial_dice": num(r.intracranial_dice),
+        "ventricles_dice": num(r.ventricles_dice),
         "seconds": round(r.seconds, 2),
         "warnings": " | ".join(r.warnings),
     }
@@ -172,8 +174,8 @@ def report_markdown(
         f"Threshold {document['threshold']}, minimum lesion {document['min_lesion_mm3']} mm^3, "
         f"{document['connectivity']}-connected lesions.",
         "",
-        "Definitions as in the 2019 IEEE TMI WMH segmentation challenge paper (reference label 2 "
-        "ignored). Medians over cases; lesion recall pooled over all reference lesions.",
+        "Definitions as in the 2019 IEEE TMI WMH segmentation challenge paper (excluded "
+        "voxels not scored). Medians over cases; lesion recall pooled over all reference lesions.",
         "",
         "## All cases",
         "",
