@@ -19,7 +19,7 @@ from pathlib import Path
 from flairwatch.errors import ConfigInvalid
 
 DEFAULT_FOLDER = Path("demo")
-STUDY_NAME = "Harbourview Ageing Study (invented)"
+STUDY_NAME = "Example Ageing Study (invented for this demo)"
 
 
 @dataclass(frozen=True)
@@ -34,9 +34,9 @@ class DemoParticipant:
 
 
 PARTICIPANTS = (
-    DemoParticipant("HVA-0101", "Demo^Alder", 7101, "2d_axial", 3.0, 6.0, with_t1=True),
-    DemoParticipant("HVA-0102", "Demo^Birch", 7102, "3d_sagittal", 1.5, 1.5),
-    DemoParticipant("HVA-0103", "Demo^Cedar", 7103, "2d_axial", 1.5, 24.0),
+    DemoParticipant("EXA-0101", "Demo^Alder", 7101, "2d_axial", 3.0, 6.0, with_t1=True),
+    DemoParticipant("EXA-0102", "Demo^Birch", 7102, "3d_sagittal", 1.5, 1.5),
+    DemoParticipant("EXA-0103", "Demo^Cedar", 7103, "2d_axial", 1.5, 24.0),
 )
 
 
