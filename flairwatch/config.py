@@ -23,6 +23,9 @@ DEFAULT_SETTLE_SECONDS = 30.0
 DEFAULT_RESCAN_SECONDS = 300.0
 DEFAULT_MIN_LESION_MM3 = 10.0
 DEFAULT_CONNECTIVITY = 26
+DEFAULT_RETRY_SECONDS = 30.0
+DEFAULT_OVERDUE_SECONDS = 600.0
+DEFAULT_OVERDUE_FACTOR = 5.0
 
 
 def is_model_name(ref: str | Path) -> bool:
@@ -88,6 +91,9 @@ class Config:
     identifiers: Identifiers = field(default_factory=Identifiers)
     delete_inbox_files: bool = False
     keep_versions: int = 0  # 0 = keep every model version's results
+    retry_seconds: float = DEFAULT_RETRY_SECONDS  # first retry after a failure; then doubled
+    overdue_seconds: float = DEFAULT_OVERDUE_SECONDS  # status: a job running longer than
+    overdue_factor: float = DEFAULT_OVERDUE_FACTOR  # max(these s, factor x median) is a problem
 
     def threads_per_worker(self) -> int:
         if self.threads > 0:
@@ -161,6 +167,9 @@ def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None)
         values["settle_seconds"] = _number("settle_seconds", raw["settle_seconds"], lo=0)
     if "rescan_seconds" in raw:
         values["rescan_seconds"] = _number("rescan_seconds", raw["rescan_seconds"], lo=1)
+    for key, lo in (("retry_seconds", 0.0), ("overdue_seconds", 1.0), ("overdue_factor", 1.0)):
+        if key in raw:
+            values[key] = _number(key, raw[key], lo=lo)
     for key in ("polling", "delete_inbox_files"):
         if key in raw:
             values[key] = _flag(key, raw[key])

@@ -55,8 +55,12 @@ def write_config(
     polling: bool = False,
     quarantine: bool = False,
     workers: int = 1,
+    **extra: object,
 ) -> Path:
-    """A config file with inbox/results/state under ``tmp``; returns its path."""
+    """A config file with inbox/results/state under ``tmp``; returns its path.
+
+    ``extra`` keys are written as they are (e.g. ``retry_seconds=1``).
+    """
     for name in ("inbox", "results", "state"):
         (tmp / name).mkdir(exist_ok=True)
     cfg = {
@@ -70,6 +74,7 @@ def write_config(
         "workers": workers,
         "threads": 1,
         "model": str(model),
+        **extra,
     }
     path = tmp / "flairwatch.yaml"
     path.write_text(yaml.safe_dump(cfg))

@@ -5,6 +5,8 @@ from __future__ import annotations
 import multiprocessing
 import os
 import sqlite3
+import subprocess
+import sys
 import threading
 import time
 from pathlib import Path
@@ -13,6 +15,7 @@ import pytest
 
 from flairwatch.errors import ConfigInvalid
 from flairwatch.ledger import schema
+from flairwatch.ledger.owners import DAEMON_LOCK, Owner, new_token
 from flairwatch.ledger.schema import SCHEMA_VERSION
 from flairwatch.ledger.store import (
     LEDGER_FILE,
@@ -55,7 +58,7 @@ def test_open_sets_wal_and_full_sync(tmp_path: Path) -> None:
         # PRAGMA docs: synchronous FULL is 2
         assert led.query("PRAGMA journal_mode")[0][0] == "wal"
         assert led.query("PRAGMA synchronous")[0][0] == 2
-        assert led.query("PRAGMA user_version")[0][0] == SCHEMA_VERSION == 2
+        assert led.query("PRAGMA user_version")[0][0] == SCHEMA_VERSION == 3
     with Ledger.open(tmp_path / "state") as led:  # reopening keeps the schema
         assert led.state_counts() == {}
 
@@ -120,16 +123,87 @@ def test_claim_order_state_guard_and_current_result(tmp_path: Path) -> None:
         assert led.done_since(0.0) == (2, 2.0)
 
 
-def test_requeue_running_after_crash(tmp_path: Path) -> None:
+# A process that claims one job through its own Ledger and then waits: a re-run, or a daemon
+# whose worker holds the job. It prints the job id once claimed.
+CLAIMER = """
+import sys, time
+from pathlib import Path
+from flairwatch.ledger.store import Ledger
+led = Ledger.open(Path(sys.argv[1]))
+job = led.claim_next(time.time(), "m", "1", 4242)
+print(job.id if job else 0, flush=True)
+time.sleep(600)
+"""
+
+
+def _start_claimer(state: Path) -> tuple[subprocess.Popen[str], int]:
+    proc = subprocess.Popen(
+        [sys.executable, "-c", CLAIMER, str(state)], stdout=subprocess.PIPE, text=True
+    )
+    assert proc.stdout is not None
+    return proc, int(proc.stdout.readline())
+
+
+def test_dead_owner_is_found_by_its_lock_even_as_a_zombie(tmp_path: Path) -> None:
+    # the case that kept a series 'running' forever: the owner was killed, but kill(pid, 0)
+    # still answers for its zombie (proc(5): state Z until the parent reaps it)
     with Ledger.open(tmp_path) as led:
         job = _add_series(led, "9.1", 1, 1.0)
-        led.claim_next(2.0, "m", "1", 99)
-    with Ledger.open(tmp_path) as led:  # a new daemon after kill -9
-        # a job whose worker still runs (another process) is left alone
-        assert led.requeue_running(3.0, alive=lambda pid: pid == 99) == []
-        assert led.requeue_running(3.0, alive=lambda pid: False) == [job]
-        again = led.claim_next(3.0, "m", "1", 100)
-        assert again is not None and again.attempts == 2
+    proc, claimed = _start_claimer(tmp_path)
+    try:
+        assert claimed == job
+        with Ledger.open(tmp_path) as led:
+            assert led.requeue_orphans(2.0) == []  # a live owner keeps its job
+            assert led.job(job).state is JobState.RUNNING
+            proc.kill()  # SIGKILL; not reaped yet
+            wait_until = time.monotonic() + 10
+            while "Z" not in Path(f"/proc/{proc.pid}/stat").read_text("ascii").split()[2]:
+                assert time.monotonic() < wait_until, "the owner did not become a zombie"
+                time.sleep(0.02)
+            os.kill(proc.pid, 0)  # the old pid check would say "alive"
+            assert led.requeue_orphans(3.0) == [job]
+            again = led.job(job)
+            # the attempt is given back: the series did not fail, its owner died
+            assert again.state is JobState.QUEUED and again.attempts == 0
+            assert not list((tmp_path / "owners").iterdir())  # the dead run's lock file is gone
+    finally:
+        proc.kill()
+        proc.wait()
+
+
+def test_daemon_lock_owns_every_earlier_daemon_job(tmp_path: Path) -> None:
+    first, second = Owner(new_token(), DAEMON_LOCK), Owner(new_token(), DAEMON_LOCK)
+    with Ledger.open(tmp_path) as old:
+        old.take_ownership(first)
+        job = _add_series(old, "9.1", 1, 1.0)
+        assert old.claim_next(2.0, "m", "1", 7) is not None
+        # a re-run elsewhere holds its own job under its own lock
+        rerun_job = _add_series(old, "9.9", 1, 1.0)
+        proc, claimed_by_rerun = _start_claimer(tmp_path)
+        try:
+            assert claimed_by_rerun == rerun_job
+            with Ledger.open(tmp_path) as new:
+                new.take_ownership(second)
+                # the new lock holder requeues the earlier daemon's job without any pid check,
+                # and leaves the live re-run's job alone
+                assert new.requeue_orphans(3.0, held=()) == [job]
+                assert new.job(rerun_job).state is JobState.RUNNING
+                claimed = new.claim_next(4.0, "m", "1", 8)
+                assert claimed is not None and claimed.id == job and claimed.owner == second.token
+                # the stale owner can no longer touch it, nor record a result for it
+                assert not old.move_job(job, [JobState.RUNNING], JobState.FAILED, 5.0)
+                summary = {"model": {"name": "m", "version": "1"}}
+                assert not old.finish_done(job, "/r/x", summary, adopted=False, seconds=1.0,
+                                           now=5.0)  # fmt: skip
+                assert new.query("SELECT COUNT(*) FROM results")[0][0] == 0
+                # supervise: our own running job that no worker holds goes back to the queue
+                assert new.requeue_orphans(6.0, held={job}) == []
+                assert new.requeue_orphans(6.0, held=set()) == [job]
+        finally:
+            proc.kill()
+            proc.wait()
+        with Ledger.open(tmp_path) as new:  # the re-run is gone: its job is an orphan now
+            assert new.requeue_orphans(7.0) == [rerun_job]
 
 
 def _claimer(state: str, out: multiprocessing.Queue[list[int]]) -> None:
@@ -333,7 +407,9 @@ def test_schema_1_ledger_is_migrated_in_place(tmp_path: Path) -> None:
     with pytest.raises(ConfigInvalid, match=r"schema 1, older .* start 'flairwatch watch'"):
         Ledger.open_readonly(tmp_path / "state")
     with Ledger.open(tmp_path / "state") as led:
-        assert led.query("PRAGMA user_version")[0][0] == 2
+        assert led.query("PRAGMA user_version")[0][0] == SCHEMA_VERSION
+        # schema 3: running jobs name their owner; none of the old rows has one
+        assert led.query("SELECT COUNT(*) FROM jobs WHERE owner IS NULL")[0][0] == 4
         states = dict(led.query("SELECT id, state FROM jobs"))
         assert states == {1: "done", 2: "refused", 3: "failed", 4: "queued"}
         assert [j.id for j in led.jobs_in(JobState.REFUSED)] == [2]

@@ -14,6 +14,7 @@ import io
 import json
 import os
 import subprocess
+import sys
 import xml.etree.ElementTree as ET
 from collections.abc import Iterator
 from pathlib import Path
@@ -172,16 +173,28 @@ def test_new_arrivals_go_first_and_reruns_never_take_them(ledger_only: Ledger) -
 
 
 def test_orphaned_rerun_jobs_are_queued_again(ledger_only: Ledger) -> None:
-    dead = subprocess.Popen(["true"])
-    dead.wait()
+    # ownership is by lock, not pid (flairwatch/ledger/owners.py): another re-run process claims
+    # a job and dies without a word; its lock goes with it, so its job is an orphan
     ledger = ledger_only
     queue_reruns(ledger, "tiny-threshold", "0.0.2", now=NOW + 10)
-    a = claim_rerun(ledger, "tiny-threshold", "0.0.2", dead.pid, NOW + 11)
+    script = (
+        "import os, sys\n"
+        "from pathlib import Path\n"
+        "from flairwatch.ledger.store import Ledger\n"
+        "from flairwatch.research.reprocess import claim_rerun\n"
+        "job = claim_rerun(Ledger(Path(sys.argv[1])), 'tiny-threshold', '0.0.2', os.getpid(),"
+        f" {NOW + 11})\n"
+        "print(job.id, flush=True)\n"
+        "os._exit(0)\n"
+    )
+    dead = subprocess.run([sys.executable, "-c", script, str(ledger.path)], capture_output=True,
+                          text=True, check=True)  # fmt: skip
+    a = ledger.job(int(dead.stdout))
     b = claim_rerun(ledger, "tiny-threshold", "0.0.2", os.getpid(), NOW + 11)
-    assert a is not None and b is not None
+    assert a.state is JobState.RUNNING and b is not None
     assert requeue_orphans(ledger, "tiny-threshold", "0.0.2", NOW + 12) == 1
     assert ledger.job(a.id).state is JobState.QUEUED
-    assert ledger.job(b.id).state is JobState.RUNNING
+    assert ledger.job(b.id).state is JobState.RUNNING  # ours: this process lives
 
 
 def test_since_limits_the_series_queued(ledger_only: Ledger) -> None:

@@ -178,3 +178,31 @@ def test_hostile_header_values_stay_inside_results(
         # result paths are built from keys only: short hex keys and fixed file names (DESIGN.md)
         assert all(re.fullmatch(r"[A-Za-z0-9._-]+", part) for part in rel.parts), rel
     assert "escape" not in str(result) and "evil" not in str(result)
+
+
+def test_once_after_a_kill_mid_series_does_not_count_the_attempt(
+    tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    # the daemon dies while its worker holds a series: the next run owns the state folder's
+    # lock, so it requeues the job at once (no pid check), without counting it against the series
+    cfg = write_config(tmp_path, tiny_model_manifest, settle=0.3)
+    spec = replace(FLAIR, rows=256, columns=256, slices=40, pixel_spacing=(0.9, 0.9))
+    copy_in(stage_series(tmp_path / "staging", "a", spec), tmp_path / "inbox", "a")
+    log = tmp_path / "daemon.log"
+    proc = start_daemon(cfg, log)
+    try:
+        wait_for(
+            lambda: "running (attempt 1)" in log.read_text(encoding="utf-8"),
+            30,
+            "a running series",
+            step=0.02,
+        )
+    finally:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(10)
+    assert [st for _uid, st, *_ in jobs(tmp_path / "state")] == ["running"]
+    assert run_once(cfg, tmp_path / "once.log", timeout=60) == 0
+    db = sqlite3.connect(tmp_path / "state" / "ledger.sqlite3")
+    assert db.execute("SELECT state, attempts FROM jobs").fetchall() == [("done", 1)]
+    db.close()
+    assert "were running when the daemon stopped" in (tmp_path / "once.log").read_text("utf-8")

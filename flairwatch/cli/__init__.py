@@ -62,6 +62,11 @@ COMMANDS: tuple[Command, ...] = (
         "flairwatch.cli.status:add_backup_arguments",
     ),
     Command(
+        "retry",
+        "queue failed (or refused) series again, by series key or since a date",
+        "flairwatch.cli.retry",
+    ),
+    Command(
         "reprocess",
         "re-run done series with another model version and report what changed",
         "flairwatch.cli.reprocess",

@@ -68,6 +68,9 @@ def _state_dir(args: argparse.Namespace) -> Path:
 
 
 def run_status(args: argparse.Namespace) -> int:
+    from flairwatch.config import load_config
+
+    cfg = load_config(args.config)  # overdue_seconds, overdue_factor
     with Ledger.open_readonly(_state_dir(args)) as ledger:
         report = gather(
             ledger,
@@ -75,6 +78,8 @@ def run_status(args: argparse.Namespace) -> int:
             stale_s=args.stale_after,
             stuck_s=args.stuck_after,
             failure_run=args.failure_run,
+            overdue_s=cfg.overdue_seconds,
+            overdue_factor=cfg.overdue_factor,
         )
     if args.json:
         print(json.dumps(asdict(report) | {"healthy": report.healthy}, indent=2, default=str))

@@ -51,8 +51,11 @@ class Dispatcher:
             if series is None:
                 self._finish_bad(job, "its files are no longer in the inbox", now, quarantine=False)
                 continue
+            if not pool.submit(slot, Task(job.id, series, job.revision)):
+                self.ledger.give_back(job.id, now)  # the worker was exiting: not an attempt
+                log.warning("series %s: worker %d was exiting; queued again", label, slot.index)
+                continue
             log.info("series %s: running (attempt %d)", label, job.attempts)
-            pool.submit(slot, Task(job.id, series, job.revision))
 
     def record(self, report: Report, now: float) -> bool:
         """Record a worker's report; True when it ended a job (the inbox may need a rescan)."""
@@ -60,11 +63,20 @@ class Dispatcher:
             return False
         job = self.ledger.job(report.job_id)
         label = self.ledger.series(job.series_id).series_key
+        mine = self.ledger.owner.token if self.ledger.owner else None
+        if job.state is not JobState.RUNNING or job.owner not in (None, mine):
+            # requeued behind our back (a supervise check found no holder): the next run counts
+            log.warning("series %s: a report on a job this run no longer holds (%s); ignored",
+                        label, job.state.value)  # fmt: skip
+            return True
         if report.kind == "done":
-            self.ledger.finish_done(
+            if not self.ledger.finish_done(
                 job.id, report.result_dir, report.summary, adopted=report.adopted,
                 seconds=report.seconds, now=now, rss_kb=report.rss_kb,
-            )  # fmt: skip
+            ):  # fmt: skip
+                log.warning("series %s: another run holds the job now; its result is left to it",
+                            label)  # fmt: skip
+                return True
             log.info(
                 "series %s: done in %.1f s%s, WMH %s mL, worker RSS %d MiB",
                 label, report.seconds, " (adopted)" if report.adopted else "",
@@ -86,7 +98,7 @@ class Dispatcher:
                 job.id, [JobState.RUNNING], JobState.QUEUED, now,
                 error=report.message, not_before=now + delay,
             )  # fmt: skip
-            log.warning("series %s: %s; retry in %.0f s", label, report.message, delay)
+            log.warning("series %s: %s; retry in %.3g s", label, report.message, delay)
             return True
         message = report.message
         if transient:

@@ -6,23 +6,30 @@
 - the daemon's heartbeat (written every few seconds) is recent and says "running";
 - the queue is not stuck: the oldest job that may run has not waited longer than
   ``--stuck-after`` while nothing started or finished;
-- the latest ``--failure-run`` processing jobs did not all fail.
+- the latest ``--failure-run`` processing jobs did not all fail;
+- no series has been running longer than max(``overdue_seconds``, ``overdue_factor`` times the
+  median processing time of the last 50 series done): a hung worker or a lost job shows here.
 
 ``backup`` copies the ledger with SQLite's online backup API, safe while the daemon writes.
 """
 
 from __future__ import annotations
 
+import math
+import statistics
 import time
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+from flairwatch.config import DEFAULT_OVERDUE_FACTOR, DEFAULT_OVERDUE_SECONDS
 from flairwatch.ledger.store import JobState, Ledger
 
 DEFAULT_STALE_SECONDS = 60.0  # heartbeat older than this: the daemon is not running
 DEFAULT_STUCK_SECONDS = 3600.0
 DEFAULT_FAILURE_RUN = 3
 RECENT_ERRORS = 5
+RECENT_SERIES = 50  # the median processing time behind the running-time limit
 
 
 @dataclass(frozen=True)
@@ -38,10 +45,18 @@ class Report:
     mean_seconds: float | None
     errors: list[dict[str, Any]] = field(default_factory=list)
     problems: list[str] = field(default_factory=list)
+    running_limit_s: float | None = None  # a series running longer is a problem
 
     @property
     def healthy(self) -> bool:
         return not self.problems
+
+
+def running_limit(recent_seconds: Sequence[float], floor_s: float, factor: float) -> float:
+    """Longest healthy running time in seconds: max(floor_s, factor x median of recent) (pure)."""
+    if not recent_seconds:
+        return floor_s
+    return max(floor_s, factor * statistics.median(recent_seconds))
 
 
 def problems(
@@ -54,8 +69,13 @@ def problems(
     stale_s: float,
     stuck_s: float,
     failure_run: int,
+    running: Sequence[tuple[str | None, float]] = (),
+    running_limit_s: float = math.inf,
 ) -> list[str]:
-    """Health problems from ledger facts (pure). An empty list means healthy."""
+    """Health problems from ledger facts (pure). An empty list means healthy.
+
+    ``running`` holds (series key, seconds running) of every running job.
+    """
     found = []
     if daemon is None:
         found.append("the daemon has never run on this ledger")
@@ -75,6 +95,12 @@ def problems(
     recent = outcomes[:failure_run]
     if failure_run > 0 and len(recent) == failure_run and all(s == "failed" for s in recent):
         found.append(f"the last {failure_run} series failed; see the errors above")
+    for key, age in running:
+        if age > running_limit_s:
+            found.append(
+                f"series {key} has been running for {age / 60:.0f} min, longer than the "
+                f"{running_limit_s / 60:.0f} min limit: a worker may be stuck; see the daemon's log"
+            )
     return found
 
 
@@ -85,6 +111,8 @@ def gather(
     stale_s: float = DEFAULT_STALE_SECONDS,
     stuck_s: float = DEFAULT_STUCK_SECONDS,
     failure_run: int = DEFAULT_FAILURE_RUN,
+    overdue_s: float = DEFAULT_OVERDUE_SECONDS,
+    overdue_factor: float = DEFAULT_OVERDUE_FACTOR,
 ) -> Report:
     counts = ledger.state_counts()
     oldest = ledger.oldest_waiting(now)
@@ -92,6 +120,7 @@ def gather(
     waiting = len([j for j in ledger.jobs_in(JobState.QUEUED) if j.not_before <= now])
     done, mean = ledger.done_since(now - 3600.0)
     daemon = ledger.heartbeat()
+    limit = running_limit(ledger.recent_seconds(RECENT_SERIES), overdue_s, overdue_factor)
     errors = [
         {"finished": t, "state": st, "series": key, "revision": rev, "error": err}
         for t, st, key, rev, err in ledger.recent_errors(RECENT_ERRORS)
@@ -105,8 +134,10 @@ def gather(
         stale_s=stale_s,
         stuck_s=stuck_s,
         failure_run=failure_run,
+        running=[(key, now - started) for key, started in ledger.running_jobs()],
+        running_limit_s=limit,
     )
-    return Report(now, daemon, counts, waiting, oldest_wait, done, mean, errors, found)
+    return Report(now, daemon, counts, waiting, oldest_wait, done, mean, errors, found, limit)
 
 
 def _when(t: float | None) -> str:

@@ -19,7 +19,6 @@ running back in the queue, and a finished folder the ledger missed is adopted, n
 from __future__ import annotations
 
 import contextlib
-import fcntl
 import logging
 import os
 import queue
@@ -41,42 +40,33 @@ from flairwatch.daemon.tuning import Tuning
 from flairwatch.daemon.workers import WorkerPool
 from flairwatch.engine import results
 from flairwatch.errors import ConfigInvalid, FlairwatchError, ModelInvalid
+from flairwatch.ledger.owners import DAEMON_LOCK, Owner, new_token, try_lock
 from flairwatch.ledger.store import JobState, Ledger
 
 log = logging.getLogger(__name__)
 
-LOCK_FILE = "daemon.lock"
 OUTPUT_UMASK = 0o027  # results and ledger: owner and group only
 EXIT_OK, EXIT_FAILED, EXIT_INTERRUPTED = 0, 1, 130
 
 
 @contextlib.contextmanager
-def exclusive(state: Path) -> Iterator[None]:
-    """Hold the state folder's lock: one daemon per ledger."""
-    fd = os.open(state / LOCK_FILE, os.O_RDWR | os.O_CREAT, 0o640)
+def exclusive(state: Path) -> Iterator[Owner]:
+    """Hold the state folder's lock: one daemon per ledger, and the owner of its running jobs.
+
+    Yields the run's owner (a fresh token under ``daemon.lock``), written on every job it claims.
+    """
+    fd = os.open(state / DAEMON_LOCK, os.O_RDWR | os.O_CREAT, 0o640)
     try:
-        try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-        except BlockingIOError:
+        if not try_lock(fd):  # a re-run may hold it for a moment to see whether we live
             raise ConfigInvalid(
                 f"another 'flairwatch watch' already uses state folder {state}; stop it first"
-            ) from None
+            )
+        owner = Owner(new_token(), DAEMON_LOCK)
         os.ftruncate(fd, 0)
-        os.write(fd, f"{os.getpid()}\n".encode())
-        yield
+        os.write(fd, f"{os.getpid()} {owner.token}\n".encode())
+        yield owner
     finally:
         os.close(fd)
-
-
-def _process_alive(pid: int) -> bool:
-    """Whether a process with this id runs on this machine (ours or not)."""
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 class Signals:
@@ -115,7 +105,8 @@ class Daemon:
         assert cfg.inbox is not None and cfg.results is not None
         self.cfg, self.ledger, self.secret = cfg, ledger, secret
         self.inbox, self.results = cfg.inbox, cfg.results
-        self.once, self.tuning, self.clock = once, tuning or Tuning(), clock
+        self.once, self.clock = once, clock
+        self.tuning = tuning or Tuning(retry_base_seconds=cfg.retry_seconds)
         self.wakes: queue.SimpleQueue[str] = queue.SimpleQueue()
         self.signals = Signals(self.wakes.put)
         self.files = InboxFiles(cfg, ledger, InboxScanner(self.inbox))
@@ -126,24 +117,28 @@ class Daemon:
     def model(self) -> dict[str, Any]:
         return self.jobs.model
 
-    def once_done(self, now: float) -> bool:
-        """--once: every series seen at the first scan has settled and nothing is runnable."""
-        if not self.intake.once_settled():
+    def once_done(self, pool: WorkerPool, now: float) -> bool:
+        """--once: every series seen at the first scan has settled and nothing is left to run.
+
+        Left to run: a job a worker of ours holds, or a queued job we could claim now. Jobs of
+        a live re-run or of another model are not ours to wait for; running jobs that nobody
+        runs are requeued by the supervise tick, so they turn into claimable jobs.
+        """
+        if not self.intake.once_settled() or pool.busy():
             return False
-        runnable = [
-            j
-            for j in self.ledger.jobs_in(JobState.QUEUED, JobState.RUNNING)
-            if j.state is JobState.RUNNING or j.not_before <= now
-        ]
-        return not runnable
+        model = self.model
+        return self.ledger.claimable(now, model["name"], model["version"], min_priority=0) == 0
 
     def run(self) -> int:
         """Run until stopped (or, with ``once``, until the inbox's series are handled)."""
         started = self.clock()
         results.remove_incomplete(self.results)  # logs each folder it removes
-        again = self.ledger.requeue_running(started, alive=_process_alive)
+        # we hold the state folder's lock: every job of an earlier daemon is ours to requeue,
+        # whatever its old worker's pid seems to say (a zombie, a reused pid...)
+        again = self.ledger.requeue_orphans(started, held=())
         if again:
-            log.warning("%d series were running when the daemon stopped; queued again", len(again))
+            log.warning("%d series were running when the daemon stopped; queued again",
+                        len(again))  # fmt: skip
         pool = WorkerPool(
             self.cfg, self.secret, self.cfg.workers, tasks_per_worker=self.tuning.tasks_per_worker
         )
@@ -190,8 +185,9 @@ class Daemon:
             if not draining:
                 self.jobs.dispatch(pool, self.intake.last_scan, now)
             for _slot, report in pool.poll(max(0.0, min(0.25, self.intake.next_scan - now))):
-                if report.kind == "init_failed":
-                    raise ModelInvalid(f"a worker could not start: {report.message}")
+                if report.kind == "init_failed":  # the pool retries it with back-off
+                    log.error("a worker could not start: %s", report.message)
+                    continue
                 now = self.clock()
                 if self.jobs.record(report, now):  # a finished series: look at the inbox soon
                     soon = now + self.tuning.event_delay_seconds
@@ -201,11 +197,25 @@ class Daemon:
                 state = "stopping" if draining else "running"
                 self.ledger.beat(os.getpid(), state, now, inbox=str(self.inbox), started=started)
                 last_beat = now
-            if observer is not None and now - last_check >= self.tuning.supervise_seconds:
-                observer.check()
+            if now - last_check >= self.tuning.supervise_seconds:
+                self.supervise(pool, observer, now)
                 last_check = now
-            if self.once and not draining and self.once_done(now):
+            if self.once and not draining and self.once_done(pool, now):
                 return EXIT_FAILED if self.jobs.unfinished or self._retry_pending() else EXIT_OK
+
+    def supervise(self, pool: WorkerPool, observer: InboxObserver | None, now: float) -> None:
+        """The periodic check: the watcher lives, and every running job has a live owner.
+
+        A running job of ours that no worker holds, or one whose owner's lock is free (a re-run
+        that died), goes back to the queue without counting against its series.
+        """
+        if observer is not None:
+            observer.check()
+        held = {s.job_id for s in pool.busy() if s.job_id is not None}
+        for job_id in self.ledger.requeue_orphans(now, held=held):
+            row = self.ledger.series(self.ledger.job(job_id).series_id)
+            log.warning("series %s: its job was running with no live owner; queued again",
+                        row.series_key)  # fmt: skip
 
     def _retry_pending(self) -> bool:
         return any(j.attempts > 0 for j in self.ledger.jobs_in(JobState.QUEUED))
@@ -223,6 +233,7 @@ def serve(cfg: Config, *, once: bool = False) -> int:
     os.umask(OUTPUT_UMASK)
     cfg.results.mkdir(parents=True, exist_ok=True)
     cfg.state.mkdir(parents=True, exist_ok=True)
-    with exclusive(cfg.state), Ledger.open(cfg.state) as ledger:
+    with exclusive(cfg.state) as owner, Ledger.open(cfg.state) as ledger:
+        ledger.take_ownership(owner)
         secret = keys.load_or_create_secret(cfg.state)
         return Daemon(cfg, ledger, secret, once=once).run()

@@ -29,13 +29,15 @@ from pathlib import Path
 from typing import Any
 
 from flairwatch.config import Config
+from flairwatch.daemon.deaths import death_message, memory_kill_count
 from flairwatch.errors import FlairwatchError, InputRejected, StageFailed
 from flairwatch.records import Series
 
 log = logging.getLogger(__name__)
 
 DEFAULT_TASKS_PER_WORKER = 50
-MAX_START_FAILURES = 3
+MAX_START_FAILURES = 3  # in a row while the daemon starts: the model or settings are wrong
+START_RETRY_MAX_SECONDS = 300.0
 # errors worth another try later: disk full, quota, I/O error, a share gone away
 TRANSIENT_ERRNOS = frozenset(
     {errno.ENOSPC, errno.EDQUOT, errno.EIO, errno.ESTALE, errno.ETIMEDOUT, errno.EHOSTDOWN,
@@ -54,7 +56,11 @@ class Task:
 
 @dataclass(frozen=True)
 class Report:
-    """A message from a worker: ready, init_failed, done, refused, failed, crashed."""
+    """A message from a worker: ready, init_failed, done, refused, failed, crashed.
+
+    ``retiring`` on a job's report says the worker ends after it: the report and the retirement
+    are one message, so the daemon never hands a new task to a worker that is about to exit.
+    """
 
     kind: str
     job_id: int = 0
@@ -65,6 +71,7 @@ class Report:
     adopted: bool = False
     seconds: float = 0.0
     rss_kb: int = 0
+    retiring: bool = False
 
 
 def current_rss_kb() -> int:
@@ -126,7 +133,7 @@ def worker_main(
     model = {"name": engine.model_name, "version": engine.model_version}
     conn.send(Report("ready", summary=model))
     assert cfg.results is not None
-    for _ in range(tasks):
+    for n in range(1, tasks + 1):
         try:
             task = conn.recv()
         except EOFError:  # the daemon is gone
@@ -145,12 +152,9 @@ def worker_main(
         except Exception as exc:  # recorded per series; the worker carries on
             log.debug("job %d failed", task.job_id, exc_info=True)
             report = classify(exc)
-        conn.send(
-            replace(
-                report, job_id=task.job_id, seconds=time.monotonic() - t0, rss_kb=current_rss_kb()
-            )
-        )
-    conn.send(Report("retiring"))
+        seconds, rss_kb = time.monotonic() - t0, current_rss_kb()
+        conn.send(replace(report, job_id=task.job_id, seconds=seconds, rss_kb=rss_kb,
+                          retiring=n == tasks))  # fmt: skip
 
 
 @dataclass
@@ -163,10 +167,17 @@ class Slot:
     ready: bool = False
     job_id: int | None = None
     retiring: bool = False
+    oom_mark: int | None = None  # the cgroup's OOM-kill count when the job was handed over
 
 
 class WorkerPool:
-    """A fixed number of worker processes fed one task at a time."""
+    """A fixed number of worker processes fed one task at a time.
+
+    Until :meth:`start` returns, a worker that cannot start is fatal (the daemon exits with a
+    usage error: the model or the settings are wrong). After that, a replacement that cannot
+    start is tried again with back-off (1 s, doubling, at most :data:`START_RETRY_MAX_SECONDS`),
+    so a passing shortage of memory never stops the service.
+    """
 
     def __init__(
         self,
@@ -188,7 +199,9 @@ class WorkerPool:
         self._slots: list[Slot] = []
         self.model: dict[str, Any] = {}
         self.closing = False  # set while draining: retired or dead workers are not replaced
+        self.started = False
         self._start_failures = 0  # workers that died before they were ready, in a row
+        self._respawn: dict[int, float] = {}  # slot index -> monotonic time to try again
 
     def _spawn(self, index: int) -> Slot:
         ours, theirs = self._ctx.Pipe()
@@ -225,6 +238,7 @@ class WorkerPool:
                     raise StageFailed(f"worker could not start: {report.message}")
                 if report.kind == "crashed":
                     raise StageFailed("a worker died while starting; see the log above")
+        self.started = True
         return self.model
 
     def idle(self) -> list[Slot]:
@@ -233,16 +247,27 @@ class WorkerPool:
     def busy(self) -> list[Slot]:
         return [s for s in self._slots if s.job_id is not None]
 
-    def submit(self, slot: Slot, task: Task) -> None:
-        slot.job_id = task.job_id
-        slot.conn.send(task)
+    def submit(self, slot: Slot, task: Task) -> bool:
+        """Hand a task over; False when the worker is gone (the caller puts the job back)."""
+        try:
+            slot.conn.send(task)
+        except OSError:  # a broken pipe: the worker exited; poll() notices and replaces it
+            slot.retiring = True
+            return False
+        slot.job_id, slot.oom_mark = task.job_id, memory_kill_count()
+        return True
 
     def poll(self, timeout: float) -> list[tuple[Slot, Report]]:
         """Wait up to ``timeout`` s for messages or deaths; replace retired and dead workers."""
+        self._respawn_due()
         waitables: list[Any] = [s.conn for s in self._slots] + [
             s.process.sentinel for s in self._slots
         ]
+        if self._respawn:  # wake up in time for the next restart
+            timeout = min(timeout, max(0.0, min(self._respawn.values()) - time.monotonic()))
         ready = set(wait(waitables, timeout)) if waitables else set()
+        if not waitables:
+            time.sleep(timeout)
         out: list[tuple[Slot, Report]] = []
         for slot in list(self._slots):
             dead = False
@@ -254,20 +279,18 @@ class WorkerPool:
                     dead = True
             if slot.process.sentinel in ready or dead or not slot.process.is_alive():
                 slot.process.join(1.0)
+                code = slot.process.exitcode
                 if slot.job_id is not None:
-                    code = slot.process.exitcode
-                    out.append((slot, Report("crashed", slot.job_id, f"worker exit code {code}")))
+                    message = death_message(code, slot.oom_mark, memory_kill_count())
+                    out.append((slot, Report("crashed", slot.job_id, message)))
                     slot.job_id = None
-                if not slot.retiring and slot.ready:
-                    log.warning("worker %d died (exit code %s)", slot.index, slot.process.exitcode)
+                    log.warning("worker %d died mid-series: %s", slot.index, message)
+                elif not slot.retiring and slot.ready:
+                    log.warning("worker %d died (exit code %s)", slot.index, code)
                 if not slot.ready:
-                    self._start_failures += 1
-                    if self._start_failures >= MAX_START_FAILURES:
-                        raise StageFailed(
-                            f"workers keep dying while starting (exit code "
-                            f"{slot.process.exitcode}); check memory and the model"
-                        )
-                self._replace(slot)
+                    self._start_failed(slot, code)
+                else:
+                    self._replace(slot)
         return out
 
     def _take(self, slot: Slot, report: Report) -> Report:
@@ -275,22 +298,58 @@ class WorkerPool:
             slot.ready = True
             self._start_failures = 0
             self.model = report.summary
-        elif report.kind == "retiring":
-            slot.retiring = True
         elif report.kind in ("done", "refused", "failed"):
             slot.job_id = None
+        if report.retiring:
+            slot.retiring = True
         return report
+
+    def _start_failed(self, slot: Slot, code: int | None) -> None:
+        """A worker died before it was ready: fatal while starting, later retried with back-off."""
+        self._start_failures += 1
+        if not self.started and self._start_failures >= MAX_START_FAILURES:
+            raise StageFailed(
+                f"workers keep dying while starting (exit code {code}); check memory and the model"
+            )
+        if not self.started or self.closing:
+            self._replace(slot)
+            return
+        delay = min(START_RETRY_MAX_SECONDS, 2.0 ** (self._start_failures - 1))
+        log.error("worker %d could not start (exit code %s); trying again in %.0f s",
+                  slot.index, code, delay)  # fmt: skip
+        slot.conn.close()
+        self._slots.remove(slot)
+        self._respawn[slot.index] = time.monotonic() + delay
+
+    def _respawn_due(self) -> None:
+        now = time.monotonic()
+        for index, when in list(self._respawn.items()):
+            if self.closing:
+                del self._respawn[index]
+            elif when <= now:
+                del self._respawn[index]
+                try:
+                    self._slots.append(self._spawn(index))
+                except OSError as exc:  # no memory or no process slot for now: later again
+                    log.error("worker %d could not be started: %s", index, exc)
+                    self._respawn[index] = now + START_RETRY_MAX_SECONDS
 
     def _replace(self, slot: Slot) -> None:
         slot.conn.close()
         if self.closing:
             self._slots.remove(slot)
-        else:
+            return
+        try:
             self._slots[self._slots.index(slot)] = self._spawn(slot.index)
+        except OSError as exc:  # fork/exec failed (memory, process limit): retry with back-off
+            log.error("worker %d could not be started: %s", slot.index, exc)
+            self._slots.remove(slot)
+            self._respawn[slot.index] = time.monotonic() + START_RETRY_MAX_SECONDS / 10
 
     def stop(self, *, at_once: bool, timeout: float = 10.0) -> None:
         """Stop every worker: politely (after its series) or at once (SIGKILL)."""
         slots, self._slots = self._slots, []
+        self._respawn.clear()
         for slot in slots:
             if at_once:
                 slot.process.kill()

@@ -73,6 +73,24 @@ class ActivityTables(LedgerCore):
         )[0]
         return t
 
+    def running_jobs(self) -> list[tuple[str | None, float]]:
+        """(series key, start time) of every running job, oldest first."""
+        rows = self.query(
+            """SELECT s.series_key, j.started FROM jobs j JOIN series s ON s.id = j.series_id
+               WHERE j.state = ? AND j.started IS NOT NULL ORDER BY j.started""",
+            (JobState.RUNNING.value,),
+        )
+        return [(key, float(started)) for key, started in rows]
+
+    def recent_seconds(self, limit: int) -> list[float]:
+        """Processing times in seconds of the last ``limit`` series done, newest first."""
+        rows = self.query(
+            """SELECT seconds FROM jobs WHERE state = ? AND seconds IS NOT NULL
+               ORDER BY finished DESC LIMIT ?""",
+            (JobState.DONE.value, limit),
+        )
+        return [float(r[0]) for r in rows]
+
     def last_activity(self) -> float | None:
         """When a job last started or finished."""
         (t,) = self.query(

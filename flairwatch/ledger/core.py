@@ -29,6 +29,7 @@ from flairwatch.engine.results import fsync_dir
 from flairwatch.errors import ConfigInvalid, StageFailed
 from flairwatch.ledger import schema
 from flairwatch.ledger.disk import check_local_disk
+from flairwatch.ledger.owners import Owner, RunLock
 from flairwatch.ledger.schema import SCHEMA, SCHEMA_VERSION
 
 log = logging.getLogger(__name__)
@@ -53,6 +54,8 @@ class LedgerCore:
     def __init__(self, path: Path, *, readonly: bool = False) -> None:
         self.path = path
         self._pid = os.getpid()
+        self.owner: Owner | None = None  # who this process claims jobs as (see claimant)
+        self._run_lock: RunLock | None = None
         # isolation_level=None: we issue BEGIN IMMEDIATE ourselves
         self._db = sqlite3.connect(
             f"file:{path}?mode=ro" if readonly else str(path),
@@ -134,8 +137,26 @@ class LedgerCore:
         return cls(path, readonly=True)
 
     def close(self) -> None:
+        """Close the connection and give up this process's run lock, if it took one.
+
+        Jobs this process still holds as running become orphans that the next check requeues.
+        """
         if os.getpid() == self._pid:
             self._db.close()
+            if self._run_lock is not None:
+                self._run_lock.release()
+                self._run_lock = None
+
+    def take_ownership(self, owner: Owner) -> None:
+        """Claim jobs as ``owner`` (the daemon: a token under the state folder's own lock)."""
+        self.owner = owner
+
+    def claimant(self) -> Owner:
+        """Who this process claims jobs as; the first call takes a lock file of its own."""
+        if self.owner is None:
+            self._run_lock = RunLock(self.path.parent)
+            self.owner = self._run_lock.owner
+        return self.owner
 
     def __enter__(self) -> Self:
         return self

@@ -7,12 +7,13 @@ every move is a compare-and-set in one short transaction, so two processes never
 from __future__ import annotations
 
 import sqlite3
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Collection, Iterable
 from dataclasses import dataclass
 from enum import StrEnum
 from typing import Any
 
 from flairwatch.ledger.core import LedgerCore
+from flairwatch.ledger.owners import lock_is_free, remove_dead_lock
 
 
 class JobState(StrEnum):
@@ -57,10 +58,11 @@ class JobRow:
     not_before: float
     error: str | None = None
     result_path: str | None = None
+    owner: str | None = None  # run token of the process that holds (or last held) it
 
 
 _JOB_SELECT = """SELECT j.id, j.series_id, j.state, j.attempts, j.priority, s.study_uid,
-    s.series_uid, s.revision, j.not_before, j.error, j.result_path
+    s.series_uid, s.revision, j.not_before, j.error, j.result_path, j.owner
     FROM jobs j JOIN series s ON s.id = j.series_id"""
 _SERIES_SELECT = """SELECT id, study_uid, series_uid, revision, signature, stable_since, n_files,
     selection, study_key, series_key FROM series"""
@@ -149,7 +151,11 @@ class JobTables(LedgerCore):
     def move_job(
         self, job_id: int, source: Iterable[JobState], target: JobState, now: float, **cols: Any
     ) -> bool:
-        """Compare-and-set a job's state; extra columns are set alongside. False if it moved on."""
+        """Compare-and-set a job's state; extra columns are set alongside. False if it moved on.
+
+        A running job moves only for its owner (or when it has none: rows from before schema 3),
+        so a process whose job was requeued behind its back cannot overwrite the next run's state.
+        """
         allowed = [s.value for s in source]
         sets = ["state = ?"] + [f"{c} = ?" for c in cols]
         if target is JobState.QUEUED:
@@ -157,10 +163,12 @@ class JobTables(LedgerCore):
         if target in TERMINAL_STATES:
             sets.append(f"finished = {float(now)!r}")
         marks = ",".join("?" * len(allowed))
+        mine = self.owner.token if self.owner else None
         with self.transaction() as db:
             cur = db.execute(
-                f"UPDATE jobs SET {', '.join(sets)} WHERE id = ? AND state IN ({marks})",
-                (target.value, *cols.values(), job_id, *allowed),
+                f"""UPDATE jobs SET {", ".join(sets)} WHERE id = ? AND state IN ({marks})
+                    AND (state != ? OR owner IS NULL OR owner = ?)""",
+                (target.value, *cols.values(), job_id, *allowed, JobState.RUNNING.value, mine),
             )
             return cur.rowcount == 1
 
@@ -172,30 +180,47 @@ class JobTables(LedgerCore):
         pid: int,
         *,
         min_priority: int | None = None,
+        max_priority: int | None = None,
     ) -> JobRow | None:
         """Take the most urgent queued job for this model whose retry time has come.
 
         Jobs queued for another model version (a re-run after an upgrade) are left to whoever
-        runs that model; ``min_priority`` leaves lower-priority jobs (archive re-runs) alone.
-        The job becomes running and its attempt is counted.
+        runs that model; ``min_priority`` leaves lower-priority jobs (archive re-runs) alone and
+        ``max_priority`` leaves higher ones (new arrivals) to the daemon. The job becomes running,
+        owned by this process's :meth:`claimant` (token and lock), and its attempt is counted.
         """
         floor = -(2**62) if min_priority is None else min_priority
+        ceiling = 2**62 if max_priority is None else max_priority
+        owner = self.claimant()
         with self.transaction() as db:
             row = db.execute(
                 """SELECT id FROM jobs WHERE state = ? AND not_before <= ? AND priority >= ?
+                   AND priority <= ?
                    AND (model_name IS NULL OR (model_name = ? AND model_version = ?))
                    ORDER BY priority DESC, id LIMIT 1""",
-                (JobState.QUEUED.value, now, floor, model_name, model_version),
+                (JobState.QUEUED.value, now, floor, ceiling, model_name, model_version),
             ).fetchone()
             if row is None:
                 return None
             db.execute(
                 """UPDATE jobs SET state=?, attempts=attempts+1, started=?, worker_pid=?,
-                   model_name=COALESCE(model_name, ?), model_version=COALESCE(model_version, ?)
-                   WHERE id=?""",
-                (JobState.RUNNING.value, now, pid, model_name, model_version, row[0]),
-            )
+                   model_name=COALESCE(model_name, ?), model_version=COALESCE(model_version, ?),
+                   owner=?, owner_lock=? WHERE id=?""",
+                (JobState.RUNNING.value, now, pid, model_name, model_version, owner.token,
+                 owner.lock, row[0]),
+            )  # fmt: skip
         return self.job(row[0])
+
+    def claimable(
+        self, now: float, model_name: str, model_version: str, *, min_priority: int = 0
+    ) -> int:
+        """How many queued jobs :meth:`claim_next` would hand out now with these arguments."""
+        (n,) = self.query(
+            """SELECT COUNT(*) FROM jobs WHERE state = ? AND not_before <= ? AND priority >= ?
+               AND (model_name IS NULL OR (model_name = ? AND model_version = ?))""",
+            (JobState.QUEUED.value, now, min_priority, model_name, model_version),
+        )[0]
+        return int(n)
 
     def finish_done(
         self,
@@ -207,13 +232,21 @@ class JobTables(LedgerCore):
         seconds: float,
         now: float,
         rss_kb: int | None = None,
-    ) -> None:
-        """Record a durable result folder: the job is done and its result becomes current."""
+    ) -> bool:
+        """Record a durable result folder: the job is done and its result becomes current.
+
+        False (nothing recorded) when the job is running for another owner: it was requeued
+        behind this process's back and someone else has it now; that run records its own result.
+        """
         model = summary.get("model") or {}
+        mine = self.owner.token if self.owner else None
         with self.transaction() as db:
-            series_id, name, version = db.execute(
-                "SELECT series_id, model_name, model_version FROM jobs WHERE id=?", (job_id,)
+            series_id, name, version, state, owner = db.execute(
+                "SELECT series_id, model_name, model_version, state, owner FROM jobs WHERE id=?",
+                (job_id,),
             ).fetchone()
+            if state == JobState.RUNNING.value and owner is not None and owner != mine:
+                return False
             name = model.get("name", name)
             version = model.get("version", version)
             db.execute(
@@ -234,23 +267,104 @@ class JobTables(LedgerCore):
                 (series_id, job_id, name or "", version or "", result_path,
                  summary.get("lesion_volume_ml"), summary.get("lesion_count"), int(adopted), now),
             )  # fmt: skip
+        return True
 
-    def requeue_running(
-        self, now: float, alive: Callable[[int], bool] = lambda pid: False
-    ) -> list[int]:
-        """After a crash: running jobs whose worker is gone go back to the queue.
+    def give_back(self, job_id: int, now: float) -> bool:
+        """Put a job this process claimed but could not hand to a worker back in the queue.
 
-        ``alive(pid)`` tells whether a recorded worker still runs (another process, such as an
-        archive re-run, may hold jobs too). The attempt already made still counts.
+        The attempt is not counted: the series never ran. False when the job is not ours.
         """
+        mine = self.owner.token if self.owner else None
+        with self.transaction() as db:
+            cur = db.execute(
+                """UPDATE jobs SET state=?, not_before=?, worker_pid=NULL, owner=NULL,
+                   owner_lock=NULL, attempts=MAX(attempts - 1, 0)
+                   WHERE id=? AND state=? AND owner IS ?""",
+                (JobState.QUEUED.value, now, job_id, JobState.RUNNING.value, mine),
+            )
+            return cur.rowcount == 1
+
+    def requeue_orphans(self, now: float, *, held: Collection[int] | None = None) -> list[int]:
+        """Put running jobs whose owner is gone back in the queue; returns their ids.
+
+        A running job is an orphan when nobody holds its owner's lock file, when it was claimed
+        under this process's lock by an earlier run (a daemon that takes ``daemon.lock`` owns
+        every job of the daemons before it), when it has no owner (rows from before schema 3),
+        or, given ``held`` (the jobs this process's workers hold), when it is this run's own but
+        no worker holds it. Process ids are never consulted. The orphan's attempt is given back:
+        the series did not fail, its owner died.
+        """
+        state_dir = self.path.parent
+        me = self.owner
+        found: list[tuple[int, str | None]] = []
+        free: dict[str, bool] = {}
         with self.transaction() as db:
             rows = db.execute(
-                "SELECT id, worker_pid FROM jobs WHERE state = ?", (JobState.RUNNING.value,)
+                "SELECT id, owner, owner_lock FROM jobs WHERE state = ?", (JobState.RUNNING.value,)
             ).fetchall()
-            ids = [job for job, pid in rows if pid is None or not alive(pid)]
-            for job in ids:
+            for job, token, lock in rows:
+                if me is not None and token == me.token:
+                    orphan = held is not None and job not in held
+                elif lock is None or (me is not None and lock == me.lock):
+                    orphan = True
+                else:
+                    if lock not in free:
+                        free[lock] = lock_is_free(state_dir, lock)
+                    orphan = free[lock]
+                if orphan:
+                    found.append((job, token))
+            for job, token in found:
                 db.execute(
-                    "UPDATE jobs SET state=?, not_before=?, worker_pid=NULL WHERE id=?",
-                    (JobState.QUEUED.value, now, job),
+                    """UPDATE jobs SET state=?, not_before=?, worker_pid=NULL, owner=NULL,
+                       owner_lock=NULL, attempts=MAX(attempts - 1, 0)
+                       WHERE id=? AND state=? AND owner IS ?""",
+                    (JobState.QUEUED.value, now, job, JobState.RUNNING.value, token),
                 )
-        return ids
+        for lock, is_free in free.items():
+            if is_free:
+                remove_dead_lock(state_dir, lock)
+        return [job for job, _token in found]
+
+    def retry_ended(
+        self,
+        now: float,
+        *,
+        series_keys: Collection[str] = (),
+        failed_since: float | None = None,
+        refused: bool = False,
+    ) -> list[tuple[str, str, str | None]]:
+        """Queue failed (or refused) series again; returns (series key, old state, old error).
+
+        A series is chosen by its key (failed or refused), or, with ``failed_since``, every
+        series that failed since then (and was refused, with ``refused``). Only a series'
+        latest revision and its latest job count: an old failure that a later run superseded
+        is history. The job starts afresh: no attempts, no error, and a new arrival's job no
+        longer names a model, so the daemon runs it with the model it has now.
+        """
+        ended = [JobState.FAILED.value] + ([JobState.REFUSED.value] if refused else [])
+        rows = self.query(
+            """SELECT j.id, s.series_key, j.state, j.error, j.finished FROM jobs j
+               JOIN series s ON s.id = j.series_id
+               WHERE j.id = (SELECT MAX(k.id) FROM jobs k WHERE k.series_id = s.id)
+                 AND s.revision = (SELECT MAX(t.revision) FROM series t
+                                   WHERE t.study_uid = s.study_uid AND t.series_uid = s.series_uid)
+                 AND j.state IN (?, ?)""",
+            (JobState.FAILED.value, JobState.REFUSED.value),
+        )
+        chosen = [
+            r
+            for r in rows
+            if r[1] in series_keys
+            or (failed_since is not None and r[2] in ended and (r[4] or 0.0) >= failed_since)
+        ]
+        with self.transaction() as db:
+            for job_id, _key, state, _error, _finished in chosen:
+                db.execute(
+                    """UPDATE jobs SET state=?, attempts=0, not_before=?, queued=?, error=NULL,
+                       finished=NULL, started=NULL, owner=NULL, owner_lock=NULL,
+                       model_name=CASE WHEN priority >= 0 THEN NULL ELSE model_name END,
+                       model_version=CASE WHEN priority >= 0 THEN NULL ELSE model_version END
+                       WHERE id=? AND state=?""",
+                    (JobState.QUEUED.value, now, now, job_id, state),
+                )
+        return [(key, state, error) for _id, key, state, error, _f in chosen]

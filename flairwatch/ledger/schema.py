@@ -5,7 +5,8 @@
 - ``files``: every file found in the inbox (path, size, mtime in ns, SOP Instance UID, the
   revision that first took it, the reason when unusable, whether it is gone).
 - ``jobs``: one per (series revision, model run): state, attempts, priority (higher first;
-  archive re-runs are negative), model name/version, retry time, timings, error, result path.
+  archive re-runs are negative), model name/version, retry time, timings, error, result path,
+  and while running, the owner's run token and lock file (:mod:`flairwatch.ledger.owners`).
 - ``results``: one per finished result folder and model version, with a ``current`` flag.
 - ``qc_marks`` and ``corrected_masks``: review outcomes attached to a result.
 - ``heartbeat``: one row the daemon rewrites every few seconds.
@@ -18,12 +19,14 @@ older ledger. ``SCHEMA`` always creates the newest version directly.
 
 from __future__ import annotations
 
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 
 # version -> statements that turn a ledger of version - 1 into this version (run in order)
 MIGRATIONS: dict[int, tuple[str, ...]] = {
     # 0.2.0: the job state for unusable input is 'refused' ('rejected' stays a QC decision only)
     2: ("UPDATE jobs SET state = 'refused' WHERE state = 'rejected'",),
+    # 0.2.0: a running job names its owner's run token and lock file (ledger/owners.py)
+    3: ("ALTER TABLE jobs ADD COLUMN owner TEXT", "ALTER TABLE jobs ADD COLUMN owner_lock TEXT"),
 }
 
 SCHEMA = """
@@ -77,7 +80,9 @@ CREATE TABLE jobs (
     error TEXT,
     result_path TEXT,
     worker_pid INTEGER,
-    worker_rss_kb INTEGER
+    worker_rss_kb INTEGER,
+    owner TEXT,
+    owner_lock TEXT
 );
 CREATE INDEX jobs_state ON jobs (state, priority, id);
 CREATE INDEX jobs_series ON jobs (series_id);
