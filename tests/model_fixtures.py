@@ -2,8 +2,10 @@
 
 Its WMH output is sigmoid(gain * (x - 1.4)) of the centre input channel and its intracranial
 output sigmoid(gain * (x - 0.3)): after foreground-median normalisation, normal tissue is near 1,
-so voxels brighter than 1.4 times tissue become "lesion". It is a fixed function, not a trained
-model: tests use it to check plumbing, never segmentation quality.
+so voxels brighter than 1.4 times tissue become "lesion". With ``ventricles=True`` a third output,
+sigmoid(gain * (0.7 - x)), marks voxels darker than 0.7 times tissue (inside the head, once the
+engine restricts it to the intracranial mask) as ventricle. It is a fixed function, not a
+trained model: tests use it to check plumbing, never segmentation quality.
 """
 
 from __future__ import annotations
@@ -17,7 +19,9 @@ import yaml
 from onnx import TensorProto, helper, numpy_helper
 
 
-def build_tiny_onnx(path: Path, *, channels: int = 3, gain: float = 12.0) -> None:
+def build_tiny_onnx(
+    path: Path, *, channels: int = 3, gain: float = 12.0, ventricles: bool = False
+) -> None:
     centre = channels // 2
     inits = [
         numpy_helper.from_array(np.array([centre], dtype=np.int64), "start"),
@@ -26,6 +30,7 @@ def build_tiny_onnx(path: Path, *, channels: int = 3, gain: float = 12.0) -> Non
         numpy_helper.from_array(np.array(gain, dtype=np.float32), "gain"),
         numpy_helper.from_array(np.array(1.4, dtype=np.float32), "wmh_level"),
         numpy_helper.from_array(np.array(0.3, dtype=np.float32), "icv_level"),
+        numpy_helper.from_array(np.array(0.7, dtype=np.float32), "vent_level"),
     ]
     nodes = [
         helper.make_node("Slice", ["image", "start", "end", "axis"], ["centre"]),
@@ -35,13 +40,25 @@ def build_tiny_onnx(path: Path, *, channels: int = 3, gain: float = 12.0) -> Non
         helper.make_node("Sub", ["centre", "icv_level"], ["i0"]),
         helper.make_node("Mul", ["i0", "gain"], ["i1"]),
         helper.make_node("Sigmoid", ["i1"], ["icv"]),
-        helper.make_node("Concat", ["wmh", "icv"], ["probabilities"], axis=1),
     ]
+    outputs = ["wmh", "icv"]
+    if ventricles:
+        nodes += [
+            helper.make_node("Sub", ["vent_level", "centre"], ["v0"]),
+            helper.make_node("Mul", ["v0", "gain"], ["v1"]),
+            helper.make_node("Sigmoid", ["v1"], ["vent"]),
+        ]
+        outputs.append("vent")
+    nodes.append(helper.make_node("Concat", outputs, ["probabilities"], axis=1))
     graph = helper.make_graph(
         nodes,
         "tiny_threshold",
         [helper.make_tensor_value_info("image", TensorProto.FLOAT, ["N", channels, "H", "W"])],
-        [helper.make_tensor_value_info("probabilities", TensorProto.FLOAT, ["N", 2, "H", "W"])],
+        [
+            helper.make_tensor_value_info(
+                "probabilities", TensorProto.FLOAT, ["N", len(outputs), "H", "W"]
+            )
+        ],
         initializer=inits,
     )
     model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
@@ -58,11 +75,16 @@ def make_tiny_model(
     channels: int = 3,
     threshold: float = 0.5,
     version: str = "0.0.1",
+    ventricles: bool = False,
 ) -> Path:
-    """Write ``tiny.onnx`` and its manifest ``tiny.yaml`` into ``folder``; return the manifest path."""
+    """Write ``tiny.onnx`` and its manifest ``tiny.yaml`` into ``folder``; return the manifest path.
+
+    ``ventricles=True`` gives the model a third output channel, ``ventricles``.
+    """
     folder.mkdir(parents=True, exist_ok=True)
     onnx_path = folder / "tiny.onnx"
-    build_tiny_onnx(onnx_path, channels=channels)
+    build_tiny_onnx(onnx_path, channels=channels, ventricles=ventricles)
+    out_channels = ["wmh", "intracranial"] + (["ventricles"] if ventricles else [])
     manifest = {
         "name": "tiny-threshold",
         "version": version,
@@ -76,7 +98,7 @@ def make_tiny_model(
             "through_plane": "keep",
         },
         "normalisation": {"method": "foreground_median"},
-        "output": {"name": "probabilities", "channels": ["wmh", "intracranial"]},
+        "output": {"name": "probabilities", "channels": out_channels},
         "threshold": threshold,
     }
     path = folder / "tiny.yaml"

@@ -31,6 +31,8 @@ class SeriesSpec:
     patient_id: str = "FW-0001"
     patient_name: str = "Demo^Participant"
     lesions: Sequence[tuple[int, int, int, int]] = ((20, 24, 5, 3), (40, 36, 7, 2))  # (i, j, k, r)
+    # dark boxes (value 150, half of tissue) standing in for ventricles: (i0, i1, j0, j1, k0, k1)
+    ventricles: Sequence[tuple[int, int, int, int, int, int]] = ()
 
 
 def phantom_array(spec: SeriesSpec) -> np.ndarray:
@@ -43,6 +45,8 @@ def phantom_array(spec: SeriesSpec) -> np.ndarray:
         (k - ck) / (0.6 * spec.slices)
     ) ** 2 <= 1
     data = np.where(head, 300, 0).astype(np.uint16)
+    for i0, i1, j0, j1, k0, k1 in spec.ventricles:
+        data[i0:i1, j0:j1, k0:k1] = 150
     for li, lj, lk, r in spec.lesions:
         blob = (i - li) ** 2 + (j - lj) ** 2 + ((k - lk) * 2) ** 2 <= r * r
         data[blob & head] = 600

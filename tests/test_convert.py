@@ -117,3 +117,67 @@ def test_normalisation_puts_tissue_near_one() -> None:
     assert out[25, 25, 5] == pytest.approx(1.0)
     assert out[21, 21, 5] == pytest.approx(2.0)
     assert out[0, 0, 0] == 0.0
+
+
+def _scipy_inplane(data: np.ndarray, gmap: convert.GridMap, forward: bool) -> np.ndarray:
+    """The reference: ``ndimage.affine_transform`` (linear, constant mode) on the whole (I, J, K)
+    volume with the converter's scale and shift, as the converter did before it used taps."""
+    from scipy import ndimage
+
+    matrix, offset = convert._inplane_params(gmap, forward=forward)
+    shape = (*gmap.grid.shape, gmap.n_slices) if forward else gmap.reoriented_shape
+    return ndimage.affine_transform(
+        data,
+        matrix,
+        offset=offset,
+        output_shape=shape,
+        order=1,
+        mode="constant",
+        cval=0.0,
+        prefilter=False,
+    )
+
+
+@pytest.mark.parametrize(
+    ("shape", "spacing", "grid"),
+    [
+        ((256, 256, 6), (0.9, 0.9, 3.0), GridSpec((1.0, 1.0), (224, 224))),  # the benchmark case
+        ((60, 52, 4), (0.45, 0.5, 5.0), GridSpec((1.0, 1.0), (32, 30))),  # shrink, anti-aliased
+        ((30, 34, 5), (1.3, 1.2, 1.2), GridSpec((1.0, 1.0), (48, 40))),  # enlarge, head cut off
+        ((40, 40, 3), (1.0, 1.0, 2.0), GridSpec((1.0, 1.0), (40, 40))),  # same spacing
+    ],
+)
+def test_resampling_is_bit_identical_to_scipy_affine_transform(
+    shape: tuple[int, int, int], spacing: tuple[float, float, float], grid: GridSpec
+) -> None:
+    # Oracle: scipy.ndimage.affine_transform, order 1: the converter's taps must give the very
+    # same float32 values both ways (same weights, same summation order), not merely close ones.
+    affine = np.diag([*spacing, 1.0])
+    vol = Volume(_smooth(shape, seed=len(shape) + shape[0]), affine)
+    gmap = convert.plan(vol, grid)
+    from scipy import ndimage
+
+    reoriented = convert._reorient(vol.data, gmap)
+    matrix, _ = convert._inplane_params(gmap, forward=True)
+    # the filter as documented, sigma = (factor - 1) / 2, never skipped: a one-tap kernel that the
+    # converter skips must change nothing
+    sigma = [max(0.0, (float(f) - 1) / 2) for f in matrix[:2]] + [0.0]
+    if max(sigma) > 0:
+        reoriented = ndimage.gaussian_filter(reoriented, sigma=sigma, mode="nearest")
+    expected = _scipy_inplane(reoriented, gmap, True).transpose(2, 1, 0)
+    ours = convert.resample_to_model(vol.data, gmap)
+    np.testing.assert_array_equal(ours, expected)
+    model = np.random.default_rng(2).random(ours.shape).astype(np.float32)
+    back = _scipy_inplane(model.transpose(2, 1, 0), gmap, False)
+    np.testing.assert_array_equal(convert.resample_to_series(model, gmap), back)
+    # slices shared among threads: the same values
+    np.testing.assert_array_equal(convert.resample_to_model(vol.data, gmap, threads=2), expected)
+    np.testing.assert_array_equal(convert.resample_to_series(model, gmap, threads=3), back)
+
+
+def test_identity_sized_antialias_filter_is_skipped_only_when_scipy_would_not_filter() -> None:
+    # scipy's Gaussian kernel radius is int(truncate x sigma + 0.5) with truncate 4 (scipy's
+    # gaussian_filter1d source, from memory): below sigma 0.125 it is one tap
+    assert convert._antialias_sigma(1.11) == 0.0  # 0.9 mm -> 1.0 mm: sigma 0.055, one tap
+    assert convert._antialias_sigma(1.5) == pytest.approx(0.25)
+    assert convert._antialias_sigma(0.8) == 0.0  # enlarging: no filter

@@ -16,7 +16,8 @@ from pydicom.dataset import Dataset, FileMetaDataset
 from pydicom.uid import EnhancedMRImageStorage, ExplicitVRLittleEndian, generate_uid
 
 from flairwatch.errors import InputRejected
-from flairwatch.intake.load import load_nifti, load_series, stack_geometry, volume_from_datasets
+from flairwatch.intake.geometry import stack_geometry
+from flairwatch.intake.load import load_nifti, load_series, volume_from_datasets
 from flairwatch.volume import lps_to_ras
 from tests.dicom_fixtures import (
     DICOMDIR_TESTS,

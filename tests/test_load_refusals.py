@@ -19,7 +19,8 @@ from pydicom.uid import (
 
 import flairwatch.intake.load
 from flairwatch.errors import InputRejected
-from flairwatch.intake.load import load_series, series_label, stack_geometry, volume_from_datasets
+from flairwatch.intake.geometry import stack_geometry
+from flairwatch.intake.load import load_series, series_label, volume_from_datasets
 from flairwatch.records import FileRecord, Series, SeriesHeader
 from tests.dicom_fixtures import (
     DICOMDIR_TESTS,

@@ -305,7 +305,44 @@ def test_lesion_rows_columns_and_values() -> None:
             "centroid_z_lps_mm": 5.0,
             "max_probability": 1.0,
             "mean_probability": 0.75,
+            # no ventricle output given: the split columns stay empty
+            "periventricular_fraction": "",
+            "location": "",
         }
     ]
     assert tuple(rows[0]) == LESION_COLUMNS
     assert lesion_rows(threshold_and_clean(prob, affine, threshold=0.5, min_lesion_mm3=100.0)) == []
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_fill_holes_equals_scipy_binary_fill_holes(seed: int) -> None:
+    # Oracle: scipy.ndimage.binary_fill_holes (default face connectivity) on random shapes,
+    # shells with cavities, masks touching the border and the empty mask.
+    from flairwatch.engine.analysis import fill_holes
+
+    rng = np.random.default_rng(seed)
+    mask = ndimage.binary_opening(rng.random((24, 20, 10)) < rng.uniform(0.4, 0.8))
+    if seed == 1:
+        mask = np.zeros((12, 12, 12), dtype=bool)
+        mask[2:10, 2:10, 2:10] = True
+        mask[4:8, 4:8, 4:8] = False  # a closed cavity
+        mask[5, 5, 0:3] = False  # and a tunnel to the border: not a hole
+    if seed == 2:
+        mask = np.zeros((5, 6, 7), dtype=bool)
+    if seed == 3:
+        mask[0] = True  # touching the border
+    np.testing.assert_array_equal(fill_holes(mask), ndimage.binary_fill_holes(mask))
+
+
+def test_largest_component_filled_keeps_one_piece_without_holes() -> None:
+    from flairwatch.engine.analysis import largest_component_filled
+
+    mask = np.zeros((20, 20, 10), dtype=bool)
+    mask[2:12, 2:12, 2:8] = True
+    mask[5:8, 5:8, 4:6] = False  # cavity
+    mask[15:18, 15:18, 1:3] = True  # a smaller separate piece
+    out = largest_component_filled(mask)
+    expected = np.zeros(mask.shape, dtype=bool)
+    expected[2:12, 2:12, 2:8] = True
+    assert out.dtype == np.uint8
+    np.testing.assert_array_equal(out.astype(bool), expected)

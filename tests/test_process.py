@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import csv
 import hashlib
 import json
 from pathlib import Path
@@ -164,3 +165,85 @@ def test_head_larger_than_the_model_view_is_warned_about(
         (vdir,) = _version_dirs(out)
         warnings = json.loads((vdir / "summary.json").read_text(encoding="utf-8"))["warnings"]
         assert any("edge of the model" in w for w in warnings) is expect, warnings
+
+
+# A ventricle box near lesion 2, half-way from lesion 1, and a third lesion far from it.
+VENTRICLE_SPEC = SeriesSpec(
+    ventricles=((28, 36, 26, 38, 4, 8),),
+    lesions=((20, 24, 5, 3), (40, 36, 7, 2), (50, 12, 6, 2)),
+)
+
+
+def _split_oracle(vdir: Path, distance_mm: float) -> tuple[float, float, dict[int, float]]:
+    """Periventricular and deep mL, and each lesion's periventricular share keyed by its voxel
+    count, from the written masks with scipy's exact Euclidean distance transform (sampling =
+    the NIfTI voxel sizes) and scipy's 26-connected labelling: the outside oracle."""
+    from scipy import ndimage
+
+    wmh_img = nib.load(vdir / "wmh_mask.nii.gz")
+    wmh = np.asarray(wmh_img.dataobj) != 0
+    vent = np.asarray(nib.load(vdir / "ventricle_mask.nii.gz").dataobj) != 0
+    zooms = wmh_img.header.get_zooms()[:3]
+    dist = ndimage.distance_transform_edt(~vent, sampling=zooms)
+    near = wmh & (dist <= distance_mm)
+    voxel_ml = float(np.prod(zooms)) / 1000
+    labels, n = ndimage.label(wmh, structure=np.ones((3, 3, 3)))
+    shares = {
+        int((labels == i).sum()): float(near[labels == i].sum() / (labels == i).sum())
+        for i in range(1, n + 1)
+    }
+    return near.sum() * voxel_ml, (wmh & ~near).sum() * voxel_ml, shares
+
+
+@pytest.mark.parametrize("distance_mm", [10.0, 4.0])
+def test_ventricle_output_splits_wmh_into_periventricular_and_deep(
+    tmp_path: Path, distance_mm: float
+) -> None:
+    from tests.model_fixtures import make_tiny_model
+
+    manifest = make_tiny_model(tmp_path / "model3", ventricles=True)
+    write_series(tmp_path / "in", VENTRICLE_SPEC)
+    out = tmp_path / "out"
+    args = ["process", str(tmp_path / "in"), "--results", str(out), "--model", str(manifest)]
+    assert main([*args, "--periventricular-mm", str(distance_mm)]) == 0
+    (vdir,) = _version_dirs(out)
+    summary = json.loads((vdir / "summary.json").read_text(encoding="utf-8"))
+    # the ventricle mask is exactly the dark box (the model grid equals the series grid here)
+    vent = np.asarray(nib.load(vdir / "ventricle_mask.nii.gz").dataobj)
+    assert np.array_equal(vent.astype(bool), phantom_array(VENTRICLE_SPEC) == 150)
+    assert summary["ventricle_volume_ml"] == pytest.approx(8 * 12 * 4 * 3.0 / 1000, abs=0.01)
+    assert summary["periventricular_mm"] == distance_mm
+    peri, deep, shares = _split_oracle(vdir, distance_mm)
+    assert summary["periventricular_volume_ml"] == pytest.approx(peri, abs=1e-4)
+    assert summary["deep_volume_ml"] == pytest.approx(deep, abs=1e-4)
+    total = summary["periventricular_volume_ml"] + summary["deep_volume_ml"]
+    assert total == pytest.approx(summary["lesion_volume_ml"], abs=2e-4)
+    assert peri > 0 and deep > 0  # the layout puts lesions on both sides of the line
+    with open(vdir / "lesions.csv", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 3
+    for row in rows:
+        share = shares[int(row["voxels"])]
+        assert float(row["periventricular_fraction"]) == pytest.approx(share, abs=1e-4)
+        assert row["location"] == ("periventricular" if share >= 0.5 else "deep")
+
+
+def test_two_output_model_leaves_the_split_empty(tmp_path: Path, tiny_model_manifest: Path) -> None:
+    write_series(tmp_path / "in", VENTRICLE_SPEC)
+    out = tmp_path / "out"
+    args = ["process", str(tmp_path / "in"), "--results", str(out)]
+    assert main([*args, "--model", str(tiny_model_manifest)]) == 0
+    (vdir,) = _version_dirs(out)
+    summary = json.loads((vdir / "summary.json").read_text(encoding="utf-8"))
+    for key in (
+        "ventricle_volume_ml",
+        "periventricular_volume_ml",
+        "deep_volume_ml",
+        "periventricular_mm",
+    ):
+        assert summary[key] is None
+    assert not (vdir / "ventricle_mask.nii.gz").exists()
+    with open(vdir / "lesions.csv", encoding="utf-8") as fh:
+        rows = list(csv.DictReader(fh))
+    assert len(rows) == 3
+    assert all(r["location"] == "" and r["periventricular_fraction"] == "" for r in rows)

@@ -29,12 +29,14 @@ from flairwatch.engine.qc_image import (
     TEXT_RGB,
     TITLE_LINE_PX,
     TITLE_PAD_PX,
+    VENTRICLE_RGB,
     axial_view,
     choose_slices,
     outline_tile,
     qc_montage,
     save_png,
 )
+from flairwatch.errors import StageFailed
 from flairwatch.volume import lps_to_ras
 
 TITLE = ["series 3f9a2c  model wmh-demo 1.0.0", "WMH 1.25 mL in 2 lesions"]
@@ -89,6 +91,13 @@ def test_axial_view_codes_and_positions(name: str) -> None:
         np.testing.assert_allclose(apply_affine(new_affine, new_idx), world, atol=1e-9)
 
 
+def _grid(rgb: np.ndarray, title_lines: int = len(TITLE)) -> np.ndarray:
+    """The tile grid of a montage: below the title band (title lines, the view convention and the
+    legend) and above the bottom banner (our own layout)."""
+    top = BANNER_PX + (title_lines + 2) * TITLE_LINE_PX + 2 * TITLE_PAD_PX
+    return rgb[top:-BANNER_PX]
+
+
 def _ring_components(rgb: np.ndarray) -> list[tuple[tuple[slice, slice], np.ndarray]]:
     outline = np.all(rgb == OUTLINE_RGB, axis=2)
     labels, n = ndimage.label(outline, structure=np.ones((3, 3)))
@@ -115,7 +124,7 @@ def test_outlines_on_mask_border_not_interior() -> None:
     montage = qc_montage(
         image, mask, np.eye(4), title_lines=TITLE, n_slices=4, tile_px=128 + 2 * CELL_PAD_PX
     )
-    rgb = np.asarray(montage.convert("RGB"))
+    rgb = _grid(np.asarray(montage.convert("RGB")))
     rings = _ring_components(rgb)
     assert len(rings) == 4  # one outline per tile, all 4 tiles on lesion slices
     # Display rows run along j (anterior at top), columns along i (patient left on the right).
@@ -157,7 +166,7 @@ def test_banner_title_and_size() -> None:
     mask[100:120, 100:110, 10:20] = 1
     montage = qc_montage(image, mask, np.diag([0.9, 0.9, 3.0, 1.0]), title_lines=TITLE)
     # Layout: 12 tiles -> 4 columns x 3 rows of 256 px, banners, title band (our own layout).
-    title_band = (len(TITLE) + 1) * TITLE_LINE_PX + 2 * TITLE_PAD_PX
+    title_band = (len(TITLE) + 2) * TITLE_LINE_PX + 2 * TITLE_PAD_PX
     assert montage.size == (4 * 256, 2 * BANNER_PX + title_band + 3 * 256)
     rgb = np.asarray(montage.convert("RGB"))
     for band in (rgb[:BANNER_PX], rgb[-BANNER_PX:]):
@@ -180,15 +189,14 @@ def test_sagittal_series_shows_lesion_on_patient_left_anterior() -> None:
     mask[15:25, 40:50, 60:70] = 1
     image[mask != 0] = 2000.0
     montage = qc_montage(image, mask, affine, title_lines=TITLE, n_slices=6, tile_px=128)
-    rgb = np.asarray(montage.convert("RGB"))
+    rgb = _grid(np.asarray(montage.convert("RGB")))
     rings = _ring_components(rgb)
     assert len(rings) == 6
-    grid_top = BANNER_PX + (len(TITLE) + 1) * TITLE_LINE_PX + 2 * TITLE_PAD_PX
     for box, ring in rings:
         interior = ndimage.binary_erosion(ndimage.binary_fill_holes(ring))
         assert rgb[box][interior][:, 0].min() == 255  # bright block under the outline
         x = (box[1].start + box[1].stop) / 2 % 128
-        y = ((box[0].start + box[0].stop) / 2 - grid_top) % 128
+        y = ((box[0].start + box[0].stop) / 2) % 128
         # Radiological convention (common practice): patient left on the image right, anterior up.
         assert x > 64 and y < 64
 
@@ -215,7 +223,8 @@ def test_blank_volume_and_no_lesion_still_render() -> None:
         np.zeros((32, 32, 5)), np.zeros((32, 32, 5)), np.eye(4), title_lines=[], tile_px=64
     )
     assert montage.size[1] > 2 * BANNER_PX
-    assert not np.any(np.all(np.asarray(montage.convert("RGB")) == OUTLINE_RGB, axis=2))
+    grid = _grid(np.asarray(montage.convert("RGB")), title_lines=0)
+    assert not np.any(np.all(grid == OUTLINE_RGB, axis=2))
 
 
 def test_save_png_small_atomic_and_readable(tmp_path: Path) -> None:
@@ -249,3 +258,45 @@ def test_save_png_failure_keeps_old_file(tmp_path: Path, monkeypatch: pytest.Mon
         save_png(Image.new("RGB", (8, 8)), path)
     assert path.read_bytes() == b"old"
     assert os.listdir(tmp_path) == ["qc.png"]
+
+
+def _has_colour(rgb: np.ndarray, colour: tuple[int, int, int]) -> bool:
+    return bool(np.any(np.all(rgb == colour, axis=2)))
+
+
+def test_ventricle_outline_and_legend_only_when_ventricles_are_given() -> None:
+    shape = (96, 96, 12)
+    image = _head(shape, seed=4)
+    mask = np.zeros(shape, dtype=np.uint8)
+    mask[30:36, 30:36, 4:8] = 1
+    vent = np.zeros(shape, dtype=np.uint8)
+    vent[50:62, 40:60, 3:9] = 1
+    kwargs = {"title_lines": TITLE, "n_slices": 4, "tile_px": 128}
+    without = np.asarray(qc_montage(image, mask, np.eye(4), **kwargs).convert("RGB"))
+    with_vent = np.asarray(
+        qc_montage(image, mask, np.eye(4), ventricles=vent, **kwargs).convert("RGB")
+    )
+    assert not _has_colour(without, VENTRICLE_RGB)
+    # ventricles: outlined in the tiles and named in the legend (a swatch in the title band)
+    assert _has_colour(_grid(with_vent), VENTRICLE_RGB)
+    assert _has_colour(with_vent[: with_vent.shape[0] - _grid(with_vent).shape[0]], VENTRICLE_RGB)
+    # WMH keeps its own colour in both, in the tiles and the legend
+    for rgb in (without, with_vent):
+        assert _has_colour(_grid(rgb), OUTLINE_RGB)
+        assert _has_colour(rgb[: rgb.shape[0] - _grid(rgb).shape[0]], OUTLINE_RGB)
+    # one ventricle ring per tile: the 4 tiles are the lesion slices 4..7, all crossing the box
+    outline = np.all(_grid(with_vent) == VENTRICLE_RGB, axis=2)
+    _, n = ndimage.label(outline, structure=np.ones((3, 3)))
+    assert n == 4
+
+
+def test_ventricle_mask_of_another_shape_is_refused() -> None:
+    shape = (32, 32, 5)
+    with pytest.raises(StageFailed):
+        qc_montage(
+            np.zeros(shape),
+            np.zeros(shape),
+            np.eye(4),
+            title_lines=[],
+            ventricles=np.zeros((8, 8, 5)),
+        )

@@ -78,3 +78,60 @@ def test_keys_are_keyed_hashes_and_never_header_text(tmp_path: Path) -> None:
     for key in (k, keys.study_key(hostile), keys.series_key(hostile, 3)):
         assert key.replace("-", "").isalnum() and "/" not in key
     assert keys.series_key("1.2.3", 1) + "-r2" == keys.series_key("1.2.3", 2)
+
+
+def test_compression_level_changes_only_the_gzip_stream(tmp_path: Path) -> None:
+    # Oracle: Python's gzip module (RFC 1952) and nibabel's reader. The probability map is written
+    # at level 1 instead of 6 for speed: the NIfTI bytes inside must be the very same, and the
+    # mask (still level 6) the very same file as before.
+    import gzip
+
+    import nibabel as nib
+    import numpy as np
+
+    from flairwatch.engine import outputs
+    from flairwatch.volume import Volume
+
+    rng = np.random.default_rng(0)
+    affine = np.diag([0.9, 0.9, 3.0, 1.0])
+    affine[:3, 3] = [-100.0, -110.0, -60.0]
+    volume = Volume(rng.random((40, 36, 8)).astype(np.float32), affine)
+    prob = rng.random(volume.shape).astype(np.float32)
+    mask = (prob > 0.9).astype(np.uint8)
+    fast = outputs.nifti_bytes(prob, volume, level=outputs.PROBABILITY_GZIP_LEVEL)
+    slow = outputs.nifti_bytes(prob, volume, level=6)
+    assert outputs.PROBABILITY_GZIP_LEVEL == 1 and fast != slow
+    assert gzip.decompress(fast) == gzip.decompress(slow)
+    assert outputs.nifti_bytes(mask, volume) == outputs.nifti_bytes(mask, volume, level=6)
+    path = tmp_path / "p.nii.gz"
+    path.write_bytes(fast)
+    img = nib.load(path)
+    np.testing.assert_array_equal(np.asarray(img.dataobj), prob)
+    np.testing.assert_allclose(img.affine[:3, :3], np.diag([-0.9, -0.9, 3.0]))  # LPS -> RAS
+
+
+def test_probability_map_compressed_in_pieces_reads_back_everywhere(tmp_path: Path) -> None:
+    # A gzip file of several members is one stream (RFC 1952, section 2.2). Oracles: Python's
+    # gzip module, nibabel, and SimpleITK's NIfTI reader (ITK, built on zlib).
+    import gzip
+
+    import nibabel as nib
+    import numpy as np
+    import SimpleITK as sitk
+
+    from flairwatch.engine import outputs
+    from flairwatch.volume import Volume
+
+    rng = np.random.default_rng(1)
+    affine = np.diag([0.9, 0.9, 3.0, 1.0])
+    volume = Volume(np.zeros((128, 128, 80), dtype=np.float32), affine)  # 5.2 MB of float32
+    prob = rng.random(volume.shape).astype(np.float32)
+    pieces = outputs.nifti_bytes(prob, volume, level=1, threads=2)
+    whole = outputs.nifti_bytes(prob, volume, level=1)
+    assert pieces != whole  # two members, not one
+    assert gzip.decompress(pieces) == gzip.decompress(whole)
+    path = tmp_path / "p.nii.gz"
+    path.write_bytes(pieces)
+    np.testing.assert_array_equal(np.asarray(nib.load(path).dataobj), prob)
+    itk = sitk.GetArrayFromImage(sitk.ReadImage(str(path)))  # (k, j, i)
+    np.testing.assert_array_equal(itk.transpose(2, 1, 0), prob)

@@ -3,12 +3,16 @@
 Model grid: the series is first reoriented by axis permutation and flips only (lossless) so that
 its axes run towards patient Left, Posterior, Superior (i, j, k); each axial slice is then resampled
 in-plane to the manifest's spacing and shape, centred on the slice. The slice stack is kept, so the
-way back is exact along k, and in-plane it is linear interpolation. Parts of a very large head that
-fall outside the model's field of view get probability 0 on the way back.
+way back is exact along k, and in-plane it is linear interpolation (computed with per-axis taps,
+bit-identical to ``scipy.ndimage.affine_transform`` with ``order=1``, about three times faster).
+Parts of a very large head that fall outside the model's field of view get probability 0 on the
+way back.
 """
 
 from __future__ import annotations
 
+import itertools
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
@@ -91,18 +95,128 @@ def normalise(data: np.ndarray, norm: Normalisation) -> np.ndarray:
     return data / np.float32(scale)
 
 
-def resample_to_model(data: np.ndarray, gmap: GridMap, *, order: int = 1) -> np.ndarray:
+@dataclass(frozen=True, eq=False)
+class _Taps:
+    """Linear-interpolation taps along one axis: out[o] = v[lo[o]] w_lo[o] + v[hi[o]] w_hi[o]."""
+
+    lo: np.ndarray  # (n_out,) int
+    hi: np.ndarray  # (n_out,) int
+    w_lo: np.ndarray  # (n_out,) float64
+    w_hi: np.ndarray  # (n_out,) float64
+    inside: np.ndarray  # (n_out,) bool; outside the input the result is 0
+
+
+def _axis_taps(n_out: int, n_in: int, scale: float, offset: float) -> _Taps:
+    """Taps of ``ndimage.affine_transform(order=1, mode="constant")`` at ``scale * o + offset``.
+
+    They are read off scipy's own output for an identity matrix, so weights and edge handling are
+    scipy's to the last bit.
+    """
+    weights = ndimage.affine_transform(
+        np.eye(n_in),
+        [scale, 1.0],
+        offset=[offset, 0.0],
+        output_shape=(n_out, n_in),
+        order=1,
+        mode="constant",
+        cval=0.0,
+        prefilter=False,
+    )
+    rows = np.arange(n_out)
+    inside = weights.any(axis=1)
+    lo = np.where(inside, np.argmax(weights != 0, axis=1), 0)
+    hi = np.minimum(lo + 1, n_in - 1)
+    w_lo = np.where(inside, weights[rows, lo], 0.0)
+    w_hi = np.where(inside & (hi != lo), weights[rows, hi], 0.0)
+    return _Taps(lo, hi, w_lo, w_hi, inside)
+
+
+def _inplane_linear(
+    kji: np.ndarray,
+    gmap: GridMap,
+    forward: bool,
+    out_shape: tuple[int, int],
+    threads: int = 1,
+) -> np.ndarray:
+    """Linear in-plane resampling of a (K, J, I) stack to (K, out J, out I), float32.
+
+    The result is bit-identical to ``ndimage.affine_transform(order=1, mode="constant")`` with
+    the same per-axis scale and shift (and the identity along k): the same weights, and the four
+    neighbours summed in scipy's order as ((v w_i) w_j), in float64, rounded once to float32.
+    Done with gathers on one slice at a time (it stays in cache), on ``threads`` threads (numpy
+    releases the interpreter lock in these loops), it takes about a third of scipy's time on a
+    256 x 256 x 48 series with one thread (``scripts/bench_inference.py`` prints the stages).
+    """
+    matrix, offset = _inplane_params(gmap, forward)
+    n_j, n_i = out_shape
+    ti = _axis_taps(n_i, kji.shape[2], float(matrix[0]), float(offset[0]))
+    tj = _axis_taps(n_j, kji.shape[1], float(matrix[1]), float(offset[1]))
+    wj_lo, wj_hi = tj.w_lo[:, None], tj.w_hi[:, None]
+    out = np.empty((kji.shape[0], n_j, n_i), dtype=np.float32)
+    # corners in scipy's order: (i lo, j lo), (i lo, j hi), (i hi, j lo), (i hi, j hi)
+    corners = (
+        (False, ti.lo, ti.w_lo, wj_lo),
+        (True, ti.lo, ti.w_lo, wj_hi),
+        (False, ti.hi, ti.w_hi, wj_lo),
+        (True, ti.hi, ti.w_hi, wj_hi),
+    )
+
+    def run(slices: range) -> None:
+        total = np.empty((n_j, n_i))
+        term = np.empty((n_j, n_i))
+        for k in slices:
+            plane = kji[k].astype(np.float64)
+            rows = (plane[tj.lo], plane[tj.hi])
+            for n, (hi_row, cols, w_i, w_j) in enumerate(corners):
+                dest = total if n == 0 else term
+                np.take(rows[hi_row], cols, axis=1, out=dest)
+                dest *= w_i
+                dest *= w_j
+                if n:
+                    total += term
+            out[k] = total
+
+    n_k = kji.shape[0]
+    parts = max(1, min(threads, n_k))
+    if parts == 1:
+        run(range(n_k))
+    else:
+        bounds = np.linspace(0, n_k, parts + 1).astype(int)
+        with ThreadPoolExecutor(max_workers=parts) as pool:
+            for done in [pool.submit(run, range(lo, hi)) for lo, hi in itertools.pairwise(bounds)]:
+                done.result()
+    out[:, ~tj.inside] = 0.0
+    out[:, :, ~ti.inside] = 0.0
+    return out
+
+
+def _antialias_sigma(factor: float) -> float:
+    """Gaussian sigma (voxels) before shrinking by ``factor``: (factor - 1) / 2, or 0."""
+    sigma = max(0.0, (factor - 1) / 2)
+    # scipy's kernel radius is int(4 sigma + 0.5); a radius of 0 is the identity filter, so it is
+    # skipped (same output, no pass over the volume)
+    return sigma if int(4.0 * sigma + 0.5) > 0 else 0.0
+
+
+def resample_to_model(
+    data: np.ndarray, gmap: GridMap, *, order: int = 1, threads: int = 1
+) -> np.ndarray:
     """Series-grid array (I, J, K) -> model-grid array (K, H, W), H along P, W along L.
 
     In-plane downsampling is preceded by a Gaussian anti-aliasing filter, sigma = (factor - 1) / 2
     voxels, as is common practice for image decimation; labels (``order=0``) are not filtered.
+    ``order`` 1 is linear interpolation, 0 nearest neighbour (for labels); ``threads`` share the
+    slices of linear interpolation (same result for any number).
     """
     r = _reorient(np.asarray(data, dtype=np.float32), gmap)
     matrix, offset = _inplane_params(gmap, forward=True)
     if order > 0:
-        sigma = [max(0.0, (f - 1) / 2) for f in matrix[:2]] + [0.0]
+        sigma = [_antialias_sigma(float(f)) for f in matrix[:2]] + [0.0]
         if max(sigma) > 0:
             r = ndimage.gaussian_filter(r, sigma=sigma, mode="nearest")
+    if order == 1:
+        kji = np.ascontiguousarray(r.transpose(2, 1, 0))
+        return _inplane_linear(kji, gmap, True, (gmap.grid.shape[1], gmap.grid.shape[0]), threads)
     out = ndimage.affine_transform(
         r,
         matrix,
@@ -116,20 +230,14 @@ def resample_to_model(data: np.ndarray, gmap: GridMap, *, order: int = 1) -> np.
     return np.ascontiguousarray(out.transpose(2, 1, 0))
 
 
-def resample_to_series(model_data: np.ndarray, gmap: GridMap) -> np.ndarray:
-    """Model-grid array (K, H, W) -> series-grid array (I, J, K), linear in-plane, exact along k."""
-    w_h_k = np.asarray(model_data, dtype=np.float32).transpose(2, 1, 0)
-    matrix, offset = _inplane_params(gmap, forward=False)
-    r = ndimage.affine_transform(
-        w_h_k,
-        matrix,
-        offset=offset,
-        output_shape=gmap.reoriented_shape,
-        order=1,
-        mode="constant",
-        cval=0.0,
-        prefilter=False,
-    )
+def resample_to_series(model_data: np.ndarray, gmap: GridMap, *, threads: int = 1) -> np.ndarray:
+    """Model-grid array (K, H, W) -> series-grid array (I, J, K), linear in-plane, exact along k.
+
+    ``threads`` share the slices (same result for any number).
+    """
+    kji = np.asarray(model_data, dtype=np.float32)
+    shape = gmap.reoriented_shape
+    r = _inplane_linear(kji, gmap, False, (shape[1], shape[0]), threads).transpose(2, 1, 0)
     return _unreorient(r, gmap)
 
 
@@ -142,9 +250,9 @@ def stack_channels(slices: np.ndarray, channels: int) -> np.ndarray:
 
 
 def to_model_input(
-    volume: Volume, grid: GridSpec, norm: Normalisation, channels: int
+    volume: Volume, grid: GridSpec, norm: Normalisation, channels: int, *, threads: int = 1
 ) -> tuple[np.ndarray, GridMap]:
     """Volume on its own grid -> model input (K, C, H, W) float32 and the map back."""
     gmap = plan(volume, grid)
-    slices = resample_to_model(normalise(volume.data, norm), gmap)
+    slices = resample_to_model(normalise(volume.data, norm), gmap, threads=threads)
     return stack_channels(slices, channels), gmap

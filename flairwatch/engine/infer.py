@@ -36,6 +36,7 @@ class Segmenter:
         import onnxruntime as ort
 
         self.manifest = manifest
+        self.threads = max(1, threads)  # the CPUs this worker may use (the engine's stages too)
         opts = ort.SessionOptions()
         opts.intra_op_num_threads = max(1, threads)
         opts.inter_op_num_threads = 1

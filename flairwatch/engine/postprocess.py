@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import logging
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -35,6 +36,8 @@ LESION_COLUMNS: tuple[str, ...] = (
     "centroid_z_lps_mm",
     "max_probability",
     "mean_probability",
+    "periventricular_fraction",
+    "location",
 )
 
 # Relative slack when comparing a component's volume with the minimum size: a lesion of exactly
@@ -86,6 +89,8 @@ class LesionResult:
         Components dropped for being smaller than the minimum size.
     removed_volume_mm3 : float
         Their total volume, mm^3.
+    labels : ndarray of int32, shape (I, J, K), optional
+        Lesion number of each voxel (0 = none), numbered as ``lesions``.
     """
 
     mask: np.ndarray
@@ -94,6 +99,7 @@ class LesionResult:
     voxel_volume_mm3: float
     removed_count: int
     removed_volume_mm3: float
+    labels: np.ndarray | None = None
 
 
 def structure_for(connectivity: int) -> npt.NDArray[np.bool_]:
@@ -167,6 +173,16 @@ def _check_settings(threshold: float, min_lesion_mm3: float) -> None:
         )
 
 
+def bounding_box(mask: np.ndarray) -> tuple[slice, ...]:
+    """Slices of the smallest box holding every non-zero voxel (empty slices for an empty mask)."""
+    m = np.asarray(mask) != 0
+    box = []
+    for axis in range(m.ndim):
+        hit = np.flatnonzero(m.any(axis=tuple(a for a in range(m.ndim) if a != axis)))
+        box.append(slice(int(hit[0]), int(hit[-1]) + 1) if hit.size else slice(0, 0))
+    return tuple(box)
+
+
 def threshold_and_clean(
     probability: np.ndarray,
     affine_lps: np.ndarray,
@@ -224,8 +240,12 @@ def threshold_and_clean(
             )
         candidates &= np.asarray(restrict_to) != 0
 
-    labels, n = connected_components(candidates, connectivity)
-    counts = np.bincount(labels.ravel(), minlength=n + 1)[1:]
+    # Work inside the candidates' bounding box: labelling visits every voxel it is given, and
+    # lesions fill a small part of the volume. Scan order inside the box is the full array's, so
+    # the numbering (and everything else) is the same as on the whole array.
+    box = bounding_box(candidates)
+    labels_box, n = connected_components(candidates[box], connectivity)
+    counts = np.bincount(labels_box.ravel(), minlength=n + 1)[1:]
     volumes = counts * voxel_mm3
     keep = at_least(volumes, min_lesion_mm3)
     # Largest first; stable sort keeps scan order among equal sizes, so numbering is reproducible.
@@ -234,10 +254,12 @@ def threshold_and_clean(
 
     relabel = np.zeros(n + 1, dtype=np.int32)
     relabel[kept_old] = np.arange(1, kept_old.size + 1, dtype=np.int32)
-    new_labels = relabel[labels]
-    mask = (new_labels > 0).astype(np.uint8)
+    new_labels = np.zeros(prob.shape, dtype=np.int32)
+    new_labels[box] = relabel[labels_box]
+    mask = np.zeros(prob.shape, dtype=np.uint8)
+    mask[box] = new_labels[box] > 0
 
-    lesions = _describe(new_labels, prob, affine, int(kept_old.size), voxel_mm3)
+    lesions = _describe(new_labels, prob, affine, int(kept_old.size), voxel_mm3, box)
     removed = ~keep
     result = LesionResult(
         mask=mask,
@@ -246,6 +268,7 @@ def threshold_and_clean(
         voxel_volume_mm3=voxel_mm3,
         removed_count=int(removed.sum()),
         removed_volume_mm3=float(counts[removed].sum()) * voxel_mm3,
+        labels=new_labels,
     )
     logger.debug(
         "kept %d lesions (%.3f mL), removed %d below %.1f mm^3",
@@ -263,11 +286,16 @@ def _describe(
     affine: npt.NDArray[np.float64],
     n: int,
     voxel_mm3: float,
+    box: tuple[slice, ...] | None = None,
 ) -> tuple[Lesion, ...]:
-    """Per-lesion statistics from labels 1..n, using only the foreground voxels."""
+    """Per-lesion statistics from labels 1..n, using only the foreground voxels.
+
+    ``box`` (slices) may say where all the labelled voxels lie, so only that part is scanned.
+    """
     if n == 0:
         return ()
-    idx = np.nonzero(labels)
+    box = box if box is not None else tuple(slice(0, s) for s in labels.shape)
+    idx = tuple(axis + sl.start for axis, sl in zip(np.nonzero(labels[box]), box, strict=True))
     lab = labels[idx]
     values = prob[idx].astype(np.float64)
     counts = np.bincount(lab, minlength=n + 1)[1:]
@@ -295,18 +323,29 @@ def _describe(
     )
 
 
-def lesion_rows(result: LesionResult) -> list[dict[str, object]]:
+def lesion_rows(
+    result: LesionResult, periventricular_fraction: Sequence[float] | None = None
+) -> list[dict[str, object]]:
     """Rows for the per-lesion CSV, one dict per lesion, largest first.
 
     Keys are :data:`LESION_COLUMNS` in order (units in the names): ``lesion``, ``voxels``,
     ``volume_mm3``, ``volume_ml``, ``centroid_x_lps_mm``, ``centroid_y_lps_mm``,
     ``centroid_z_lps_mm`` (patient LPS: x to the Left, y to Posterior, z to Superior),
-    ``max_probability``, ``mean_probability``. Volumes are rounded to 0.001 mm^3 / 0.000001 mL,
-    coordinates to 0.01 mm, probabilities to 0.0001.
+    ``max_probability``, ``mean_probability``, ``periventricular_fraction`` (share of the
+    lesion's voxels near the ventricles) and ``location`` ("periventricular" when that share is at
+    least one half, else "deep"). Without ``periventricular_fraction`` (a model with no ventricle
+    output) the last two are empty strings. Volumes are rounded to 0.001 mm^3 / 0.000001 mL,
+    coordinates to 0.01 mm, probabilities and fractions to 0.0001.
     """
     rows: list[dict[str, object]] = []
-    for lesion in result.lesions:
+    for n, lesion in enumerate(result.lesions):
         x, y, z = lesion.centroid_lps_mm
+        share: object = ""
+        location = ""
+        if periventricular_fraction is not None:
+            fraction = float(periventricular_fraction[n])
+            share = round(fraction, 4)
+            location = "periventricular" if fraction >= 0.5 else "deep"
         values = (
             lesion.label,
             lesion.voxels,
@@ -317,6 +356,8 @@ def lesion_rows(result: LesionResult) -> list[dict[str, object]]:
             round(z, 2),
             round(lesion.max_probability, 4),
             round(lesion.mean_probability, 4),
+            share,
+            location,
         )
         rows.append(dict(zip(LESION_COLUMNS, values, strict=True)))
     return rows

@@ -1,5 +1,8 @@
 """QC picture: an axial montage of the FLAIR image with WMH outlines and a research-only banner.
 
+WMH are outlined in red; when the model gives ventricles, they are outlined in green, and a
+legend line under the title names the colours drawn.
+
 Pure except :func:`save_png`. Input arrays use the axis order of :mod:`flairwatch.volume`,
 (i, j, k), with ``affine_lps`` mapping (i, j, k, 1) to patient LPS mm. Whatever the acquisition
 plane (axial, oblique, sagittal, coronal), the volume is first reoriented to the nearest axial
@@ -59,15 +62,27 @@ BANNER_TEXT_RGB = (0, 0, 0)
 TITLE_BG_RGB = (20, 24, 48)
 TEXT_RGB = (255, 255, 255)
 LETTER_RGB = (0, 220, 255)
-_OUTLINE, _BANNER, _BANNER_TEXT, _TITLE_BG, _TEXT, _LETTER = range(GREY_LEVELS, GREY_LEVELS + 6)
+VENTRICLE_RGB = (60, 230, 60)
+_OUTLINE, _BANNER, _BANNER_TEXT, _TITLE_BG, _TEXT, _LETTER, _VENTRICLE = range(
+    GREY_LEVELS, GREY_LEVELS + 7
+)
+LEGEND_SWATCH_PX = 12
 
 _DISPLAY_AXCODES = ("L", "P", "S")  # array axes after reorientation (nibabel RAS-style codes)
-_CONVENTION = "Radiological view: patient right on image left, anterior at top. Red: WMH outline."
+_CONVENTION = "Radiological view: patient right on image left, anterior at top."
 
 
 def _palette() -> list[int]:
     grey = np.round(np.arange(GREY_LEVELS) * 255.0 / (GREY_LEVELS - 1)).astype(int)
-    colours = [OUTLINE_RGB, BANNER_RGB, BANNER_TEXT_RGB, TITLE_BG_RGB, TEXT_RGB, LETTER_RGB]
+    colours = [
+        OUTLINE_RGB,
+        BANNER_RGB,
+        BANNER_TEXT_RGB,
+        TITLE_BG_RGB,
+        TEXT_RGB,
+        LETTER_RGB,
+        VENTRICLE_RGB,
+    ]
     flat = [int(v) for g in grey for v in (g, g, g)]
     flat += [c for rgb in colours for c in rgb]
     return flat + [0] * (768 - len(flat))
@@ -145,8 +160,16 @@ def choose_slices(
     return sorted(int(s) for s in np.concatenate([lesion, pick]))
 
 
-def outline_tile(grey: np.ndarray, mask: np.ndarray) -> np.ndarray:
-    """Palette indices of one tile: grey levels, with the mask's border pixels as outline.
+def _border(mask: np.ndarray) -> np.ndarray:
+    """Pixels of ``mask`` with a 4-neighbour outside it."""
+    inside = ndimage.binary_erosion(mask, structure=ndimage.generate_binary_structure(2, 1))
+    return mask & ~inside
+
+
+def outline_tile(
+    grey: np.ndarray, mask: np.ndarray, ventricles: np.ndarray | None = None
+) -> np.ndarray:
+    """Palette indices of one tile: grey levels, with the masks' border pixels as outlines.
 
     Parameters
     ----------
@@ -155,10 +178,13 @@ def outline_tile(grey: np.ndarray, mask: np.ndarray) -> np.ndarray:
     mask : ndarray of bool, shape (H, W)
         Lesion pixels; only those with a 4-neighbour outside the mask are drawn, the inside is
         left showing the image.
+    ventricles : ndarray of bool, shape (H, W), optional
+        Ventricle pixels, outlined the same way in their own colour, under the lesion outline.
     """
     tile = ((grey.astype(np.uint16) * (GREY_LEVELS - 1) + 127) // 255).astype(np.uint8)
-    inside = ndimage.binary_erosion(mask, structure=ndimage.generate_binary_structure(2, 1))
-    tile[mask & ~inside] = _OUTLINE
+    if ventricles is not None:
+        tile[_border(ventricles)] = _VENTRICLE
+    tile[_border(mask)] = _OUTLINE
     return tile
 
 
@@ -186,6 +212,7 @@ def qc_montage(
     n_slices: int = 12,
     banner: str = BANNER,
     tile_px: int = 256,
+    ventricles: np.ndarray | None = None,
 ) -> Image.Image:
     """Axial montage with lesion outlines, title lines and a burned-in banner at top and bottom.
 
@@ -207,6 +234,8 @@ def qc_montage(
     tile_px : int
         Side of each square cell in pixels; the slice is scaled to fit it, less CELL_PAD_PX on
         each side, with square pixels in mm.
+    ventricles : ndarray, shape (I, J, K), optional
+        Ventricle mask on the same grid; outlined in its own colour and named in the legend.
 
     Returns
     -------
@@ -222,6 +251,14 @@ def qc_montage(
         raise ValueError("n_slices must be >= 1 and tile_px >= 16")
     data, affine = axial_view(np.asarray(image, dtype=np.float32), affine_lps)
     lesion, _ = axial_view(np.asarray(mask) != 0, affine_lps)
+    vent = None
+    if ventricles is not None:
+        if np.shape(ventricles) != image.shape:
+            raise StageFailed(
+                f"QC ventricle mask shape {np.shape(ventricles)} differs from the image "
+                f"{image.shape}; report this as a bug"
+            )
+        vent, _ = axial_view(np.asarray(ventricles) != 0, affine_lps)
     head_threshold, low, high = intensity_levels(data)
     slices = choose_slices(data, lesion, n_slices, head_threshold)
 
@@ -235,7 +272,8 @@ def qc_montage(
     small = ImageFont.load_default(size=LETTER_FONT_PX)
     columns = min(COLUMNS, len(slices))
     rows = math.ceil(len(slices) / columns)
-    lines = [*title_lines, _CONVENTION]
+    legend = [("WMH", _OUTLINE)] + ([("ventricles", _VENTRICLE)] if vent is not None else [])
+    lines = [*title_lines, _CONVENTION, ""]  # the last line holds the legend
     probe = ImageDraw.Draw(Image.new("P", (1, 1)))
     text_w = max(probe.textlength(t, font=font) for t in [banner, *lines])
     width = max(columns * tile_px, min(int(text_w) + 2 * TITLE_PAD_PX, 2 * columns * tile_px))
@@ -253,9 +291,15 @@ def qc_montage(
         grey_img = Image.fromarray(grey).resize((tile_w, tile_h), Image.Resampling.BILINEAR)
         mask_img = Image.fromarray(lesion[:, :, k].T.astype(np.uint8) * 255)
         mask_px = np.asarray(mask_img.resize((tile_w, tile_h), Image.Resampling.NEAREST)) > 127
+        vent_px = None
+        if vent is not None:
+            vent_img = Image.fromarray(vent[:, :, k].T.astype(np.uint8) * 255)
+            vent_px = np.asarray(vent_img.resize((tile_w, tile_h), Image.Resampling.NEAREST)) > 127
         x0 = (n % columns) * tile_px + (tile_px - tile_w) // 2
         y0 = grid_top + (n // columns) * tile_px + (tile_px - tile_h) // 2
-        canvas[y0 : y0 + tile_h, x0 : x0 + tile_w] = outline_tile(np.asarray(grey_img), mask_px)
+        canvas[y0 : y0 + tile_h, x0 : x0 + tile_w] = outline_tile(
+            np.asarray(grey_img), mask_px, vent_px
+        )
         superior_mm = float((affine @ [(data.shape[0] - 1) / 2, (data.shape[1] - 1) / 2, k, 1])[2])
         origins.append((x0, y0, superior_mm))
 
@@ -273,6 +317,7 @@ def qc_montage(
             fill=_TEXT,
             font=font,
         )
+    _draw_legend(draw, legend, BANNER_PX + TITLE_PAD_PX + (len(lines) - 1) * TITLE_LINE_PX, small)
     for x0, y0, superior_mm in origins:
         pad = 2
         draw.text((x0 + pad, y0 + tile_h / 2), "R", fill=_LETTER, font=small, anchor="lm")
@@ -284,6 +329,23 @@ def qc_montage(
     return out
 
 
+def _draw_legend(
+    draw: ImageDraw.ImageDraw,
+    entries: Sequence[tuple[str, int]],
+    y: int,
+    font: ImageFont.FreeTypeFont | ImageFont.ImageFont,
+) -> None:
+    """One legend line at height ``y``: a swatch of each outline colour and its name."""
+    x = TITLE_PAD_PX
+    draw.text((x, y), "Outlines:", fill=_TEXT, font=font)
+    x += int(draw.textlength("Outlines:", font=font)) + 8
+    for name, colour in entries:
+        draw.rectangle((x, y + 2, x + LEGEND_SWATCH_PX, y + 2 + LEGEND_SWATCH_PX), fill=colour)
+        x += LEGEND_SWATCH_PX + 4
+        draw.text((x, y), name, fill=_TEXT, font=font)
+        x += int(draw.textlength(name, font=font)) + 12
+
+
 def save_png(img: Image.Image, path: Path) -> None:
     """Write ``img`` as a PNG atomically (temp file in the same folder, fsync, rename, fsync).
 
@@ -292,5 +354,7 @@ def save_png(img: Image.Image, path: Path) -> None:
     info = PngInfo()
     info.add_text("Comment", BANNER)
     buf = io.BytesIO()
-    img.save(buf, format="PNG", optimize=True, pnginfo=info)
+    # zlib level 6 without PIL's optimize pass: 1 % larger, a quarter of the time (measured on a
+    # 12-tile montage: 226 kB in 17 ms of CPU against 224 kB in 73 ms); pixels are the same
+    img.save(buf, format="PNG", compress_level=6, pnginfo=info)
     write_atomic(path, buf.getvalue())
