@@ -99,3 +99,12 @@ def test_surface_voxels_are_those_with_a_face_neighbour_outside() -> None:
     # a 5^3 cube has 5^3 - 3^3 = 98 surface voxels (counted by hand)
     assert surface.shape == (98, 3)
     assert not any((s == 3).all() for s in surface)
+
+
+def test_no_lesion_gives_zero_volumes_and_an_empty_share_list() -> None:
+    vent = np.zeros((6, 6, 3), dtype=bool)
+    vent[2:4, 2:4, 1] = True
+    split = split_by_ventricles(np.zeros(vent.shape, dtype=np.int32), 0, vent, (1.0, 1.0, 2.0))
+    assert split.periventricular_volume_ml == 0.0 and split.deep_volume_ml == 0.0
+    assert split.fraction.shape == (0,)
+    assert split.ventricle_volume_ml == pytest.approx(4 * 2.0 / 1000)

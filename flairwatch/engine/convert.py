@@ -4,7 +4,7 @@ Model grid: the series is first reoriented by axis permutation and flips only (l
 its axes run towards patient Left, Posterior, Superior (i, j, k); each axial slice is then resampled
 in-plane to the manifest's spacing and shape, centred on the slice. The slice stack is kept, so the
 way back is exact along k, and in-plane it is linear interpolation (computed with per-axis taps,
-bit-identical to ``scipy.ndimage.affine_transform`` with ``order=1``, about three times faster).
+bit-identical to ``scipy.ndimage.affine_transform`` with ``order=1``, 3 to 10 times faster).
 Parts of a very large head that fall outside the model's field of view get probability 0 on the
 way back.
 """
@@ -144,8 +144,9 @@ def _inplane_linear(
     the same per-axis scale and shift (and the identity along k): the same weights, and the four
     neighbours summed in scipy's order as ((v w_i) w_j), in float64, rounded once to float32.
     Done with gathers on one slice at a time (it stays in cache), on ``threads`` threads (numpy
-    releases the interpreter lock in these loops), it takes about a third of scipy's time on a
-    256 x 256 x 48 series with one thread (``scripts/bench_inference.py`` prints the stages).
+    releases the interpreter lock in these loops). On a 256 x 256 x 48 series with one thread it
+    needs 0.07 s of CPU instead of scipy's 0.19 s to the model grid, and 0.05 s instead of 0.52 s
+    per channel back to the series grid (measured for issue 11).
     """
     matrix, offset = _inplane_params(gmap, forward)
     n_j, n_i = out_shape
