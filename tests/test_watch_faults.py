@@ -6,12 +6,15 @@ Real `flairwatch watch` processes, real files, real watchdog and SQLite.
 
 from __future__ import annotations
 
+import errno
 import os
 import random
 import re
 import shutil
 import signal
 import sqlite3
+import subprocess
+import sys
 import time
 from dataclasses import replace
 from pathlib import Path
@@ -206,3 +209,74 @@ def test_once_after_a_kill_mid_series_does_not_count_the_attempt(
     assert db.execute("SELECT state, attempts FROM jobs").fetchall() == [("done", 1)]
     db.close()
     assert "were running when the daemon stopped" in (tmp_path / "once.log").read_text("utf-8")
+
+
+def _mount_tmpfs(folder: Path, size: str) -> bool:
+    folder.mkdir(parents=True, exist_ok=True)
+    if os.geteuid() != 0:
+        return False
+    done = subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", str(folder)],
+                          capture_output=True, check=False)  # fmt: skip
+    return done.returncode == 0
+
+
+def _fill(folder: Path) -> Path:
+    """Write zeros until the file system says ENOSPC; returns the filler file."""
+    filler = folder / "filler.bin"
+    with open(filler, "wb") as fh:
+        try:
+            while True:
+                fh.write(b"\0" * 65536)
+                fh.flush()
+        except OSError as exc:
+            assert exc.errno == errno.ENOSPC
+    return filler
+
+
+def test_full_results_disk_pauses_dispatch_and_fails_nothing(
+    tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    # a real ENOSPC (statvfs and write(2) on a small tmpfs), not a simulated one
+    results = tmp_path / "results"
+    if not _mount_tmpfs(results, "2m"):
+        pytest.skip("needs root to mount a small tmpfs for a real full disk")
+    try:
+        filler = _fill(results)
+        cfg = write_config(tmp_path, tiny_model_manifest, settle=0.3)
+        uids = []
+        for name in ("a", "b"):
+            files = stage_series(tmp_path / "staging", name)
+            copy_in(files, tmp_path / "inbox", name)
+            uids.append(series_uid_of(files))
+        log = tmp_path / "daemon.log"
+        proc = start_daemon(cfg, log)
+        try:
+            wait_for(lambda: "dispatch paused" in log.read_text("utf-8"), 30, "the pause")
+            time.sleep(1.0)  # more rounds of the loop: nothing else may be dispatched or failed
+            states_now = [st for _uid, st, *_ in jobs(tmp_path / "state")]
+            assert sorted(states_now) == ["queued", "queued"]
+            status = subprocess.run(
+                [sys.executable, "-m", "flairwatch.cli", "status", "--state",
+                 str(tmp_path / "state"), "--stale-after", "60"],
+                capture_output=True, text=True, check=False, timeout=60,
+            )  # fmt: skip
+            assert status.returncode == 1 and "no space left on the results disk" in status.stdout
+            filler.unlink()  # space comes back: dispatch resumes by itself
+            wait_for(
+                lambda: (
+                    sorted(states(tmp_path / "state").items())
+                    == [(u, ["done"]) for u in sorted(uids)]
+                ),
+                60,
+                "both series done",
+            )
+        finally:
+            assert stop(proc) == 0
+        db = sqlite3.connect(tmp_path / "state" / "ledger.sqlite3")
+        # the full disk was not the series' fault: one attempt each, the one that succeeded
+        assert db.execute("SELECT attempts FROM jobs").fetchall() == [(1,), (1,)]
+        db.close()
+        assert log.read_text("utf-8").count("dispatch paused") == 1  # logged once per change
+        assert "dispatch resumes" in log.read_text("utf-8")
+    finally:
+        subprocess.run(["umount", "-l", str(results)], check=False)

@@ -15,13 +15,12 @@ from collections.abc import Callable
 from dataclasses import replace
 from pathlib import Path
 
-import numpy as np
 import pytest
 
 from flairwatch.config import Config
 from flairwatch.daemon.inbox import Known, Step, plan, signature
 from flairwatch.daemon.observe import OverflowHook
-from flairwatch.daemon.status import gather, problems, render, running_limit
+from flairwatch.daemon.status import gather, problems, render
 from flairwatch.daemon.tuning import Tuning, retry_delay
 from flairwatch.daemon.watch import Daemon
 from flairwatch.daemon.workers import Report, classify
@@ -334,61 +333,3 @@ def test_worker_killed_mid_series_is_retried(tmp_path: Path, tiny_model_manifest
         )
     finally:
         assert stop(proc) == 0
-
-
-def test_running_limit_is_the_larger_of_floor_and_median_multiple() -> None:
-    # the median of an even count is the mean of the middle two (numpy.median agrees)
-    recent = [10.0, 30.0, 200.0, 220.0]
-    assert running_limit(recent, 600.0, 5.0) == max(600.0, 5 * float(np.median(recent))) == 600.0
-    slow = [150.0] * 49 + [1e6]  # one outlier does not move a median
-    assert running_limit(slow, 600.0, 5.0) == 5 * float(np.median(slow)) == 750.0
-    assert running_limit([], 600.0, 5.0) == 600.0
-    beat: dict[str, object] = {"pid": 1, "host": "h", "state": "running", "beat": 1000.0}
-    late = problems(beat, 1010.0, oldest_wait_s=None, last_activity=1000.0, outcomes=[],
-                    stale_s=60, stuck_s=600, failure_run=3, running=[("e1", 1500.0)],
-                    running_limit_s=600.0)  # fmt: skip
-    assert late == [
-        "series e1 has been running for 25 min, longer than the 10 min limit: a worker may be "
-        "stuck; see the daemon's log"
-    ]
-
-
-def test_status_flags_a_series_running_too_long(tmp_path: Path) -> None:
-    with Ledger.open(tmp_path) as led:
-        _, job = led.new_revision("1.2", "9.1", _fixed_keys("e9.1"), 100.0)
-        led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 100.0)
-        assert led.claim_next(100.0, "m", "1", 7) is not None
-        led.beat(42, "running", 1300.0, inbox="/in", started=90.0)
-        assert gather(led, 600.0).healthy  # running 500 s: under the 600 s floor
-        report = gather(led, 1420.0, overdue_s=600.0)
-    assert report.running_limit_s == 600.0
-    assert any("series e9.1 has been running for 22 min" in p for p in report.problems)
-
-
-def test_retry_queues_failed_and_refused_series_again(tmp_path: Path) -> None:
-    from flairwatch.cli import main
-
-    outcomes = {"9.1": ("failed", 100.0), "9.2": ("refused", 200.0), "9.3": ("failed", 50.0)}
-    with Ledger.open(tmp_path) as led:
-        ids = {}
-        for uid, (outcome, when) in outcomes.items():
-            _, job = led.new_revision("1.2", uid, _fixed_keys(f"e{uid}"), 10.0)
-            led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 10.0)
-            assert led.claim_next(20.0, "m", "1", 7) is not None
-            target = JobState.FAILED if outcome == "failed" else JobState.REFUSED
-            led.move_job(job.id, [JobState.RUNNING], target, when, error=f"{outcome} here")
-            ids[uid] = job.id
-    state = ["--state", str(tmp_path)]
-    # 1970-01-01T00:01:40Z is epoch second 100: only the failure at 100 s, not the refusal
-    assert main(["retry", *state, "--failed-since", "1970-01-01T00:01:40"]) == 0
-    with Ledger.open(tmp_path) as led:
-        again = led.job(ids["9.1"])
-        assert (again.state, again.attempts, again.error) == (JobState.QUEUED, 0, None)
-        assert led.query("SELECT model_name FROM jobs WHERE id = ?", (again.id,)) == [(None,)]
-        assert led.job(ids["9.2"]).state is JobState.REFUSED
-        assert led.job(ids["9.3"]).state is JobState.FAILED
-    # by key, a refused series too; an unknown key is reported and makes the exit code 1
-    assert main(["retry", *state, "e9.2", "e-unknown"]) == 1
-    with Ledger.open(tmp_path) as led:
-        assert led.job(ids["9.2"]).state is JobState.QUEUED
-    assert main(["retry", *state, "--failed-since", "yesterday"]) == 2

@@ -8,19 +8,32 @@ failed: retried with exponential back-off when transient, recorded for good othe
 from __future__ import annotations
 
 import logging
+import os
+import time
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
 from flairwatch.config import Config
 from flairwatch.daemon.inbox import Scan, revision_series
 from flairwatch.daemon.inputs import InboxFiles
+from flairwatch.daemon.reconcile import fix_pointers
 from flairwatch.daemon.tuning import Tuning, retry_delay
-from flairwatch.daemon.workers import Report, Task, WorkerPool
+from flairwatch.daemon.workers import NO_SPACE_ERRNOS, Report, Task, WorkerPool
 from flairwatch.engine import results
 from flairwatch.ledger.store import JobRow, JobState, Ledger
 from flairwatch.research.gallery import GALLERY_FOLDER, refresh_study
 
 log = logging.getLogger("flairwatch.daemon.watch")
+
+RESUME_FREE_BYTES = 64 << 20  # this much free on the results disk ends a pause for space...
+RESUME_GAIN_BYTES = 1 << 20  # ...or this much more than when it filled up
+
+
+def free_bytes(folder: Path) -> int:
+    """Bytes an unprivileged process may still write on the file system of ``folder``."""
+    st = os.statvfs(folder)
+    return st.f_bavail * st.f_frsize
 
 
 class Dispatcher:
@@ -32,8 +45,39 @@ class Dispatcher:
         self.results = cfg.results
         self.model: dict[str, Any] = {}
         self.unfinished = 0  # series of this run that failed or were refused
+        self.paused: str | None = None  # why dispatch waits (a full results disk), if it does
+        self.pointers_stale = False  # a pointer or gallery page could not be written
+        self._free_at_pause = 0
+        self.free_bytes: Callable[[Path], int] = free_bytes
+
+    def check_space(self) -> None:
+        """While paused for a full disk: resume once space came back (checked every few s).
+
+        Space "came back" when at least :data:`RESUME_GAIN_BYTES` more is free than when the
+        disk filled up, or :data:`RESUME_FREE_BYTES` is free; should a series fill it again,
+        dispatch pauses again at no cost to that series' attempts.
+        """
+        if self.paused is None:
+            return
+        free = self.free_bytes(self.results)
+        if free >= min(RESUME_FREE_BYTES, self._free_at_pause + RESUME_GAIN_BYTES):
+            log.warning("results disk has %d MiB free again: dispatch resumes", free >> 20)
+            self.paused = None
+            if self.pointers_stale:
+                self.pointers_stale = False
+                fix_pointers(self.ledger, self.cfg, time.time())
+
+    def _pause_for_space(self, label: str | None, message: str) -> None:
+        if self.paused is None:  # log the condition once, not for every series that meets it
+            self._free_at_pause = self.free_bytes(self.results)
+            log.error("series %s: %s; dispatch paused until space is free on the results disk "
+                      "(%s); queued series wait, none counts as failed", label, message,
+                      self.results)  # fmt: skip
+        self.paused = f"no space left for results in {self.results}"
 
     def dispatch(self, pool: WorkerPool, scan: Scan | None, now: float) -> None:
+        if self.paused is not None:
+            return
         for slot in pool.idle():
             job = self.ledger.claim_next(
                 now,
@@ -84,12 +128,23 @@ class Dispatcher:
             )  # fmt: skip
             # the daemon's own model is the current one: point the series folder at it
             version_dir = Path(report.result_dir)
-            results.set_current(version_dir.parent, version_dir.name)
-            refresh_study(
-                self.ledger, self.results / GALLERY_FOLDER, job.series_id,
-                connectivity=self.cfg.connectivity, now=now,
-            )  # fmt: skip
+            try:
+                results.set_current(version_dir.parent, version_dir.name)
+                refresh_study(
+                    self.ledger, self.results / GALLERY_FOLDER, job.series_id,
+                    connectivity=self.cfg.connectivity, now=now,
+                )  # fmt: skip
+            except OSError as exc:  # the result is safe and recorded; the pointer can wait
+                self.pointers_stale = True
+                log.warning("series %s: pointer or gallery not written (%s); fixed when space "
+                            "returns or at the next start", label, exc.strerror or exc)  # fmt: skip
+                if exc.errno in NO_SPACE_ERRNOS:
+                    self._pause_for_space(label, exc.strerror or str(exc))
             self.files.delete(job.series_id)
+            return True
+        if report.no_space:  # a full disk is not the series' fault: wait, uncounted
+            self.ledger.give_back(job.id, now, error=f"waiting for disk space: {report.message}")
+            self._pause_for_space(label, report.message)
             return True
         transient = report.kind == "crashed" or report.transient
         if transient and job.attempts < self.tuning.max_attempts:

@@ -23,7 +23,6 @@ import logging
 import os
 import queue
 import signal
-import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from types import FrameType
@@ -35,10 +34,10 @@ from flairwatch.daemon.dispatch import Dispatcher
 from flairwatch.daemon.inbox import InboxScanner
 from flairwatch.daemon.inputs import InboxFiles
 from flairwatch.daemon.observe import InboxObserver
+from flairwatch.daemon.reconcile import reconcile
 from flairwatch.daemon.settle import Intake
-from flairwatch.daemon.tuning import Tuning
+from flairwatch.daemon.tuning import Tuning, steady_clock
 from flairwatch.daemon.workers import WorkerPool
-from flairwatch.engine import results
 from flairwatch.errors import ConfigInvalid, FlairwatchError, ModelInvalid
 from flairwatch.ledger.owners import DAEMON_LOCK, Owner, new_token, try_lock
 from flairwatch.ledger.store import JobState, Ledger
@@ -100,12 +99,13 @@ class Daemon:
         *,
         once: bool = False,
         tuning: Tuning | None = None,
-        clock: Callable[[], float] = time.time,
+        clock: Callable[[], float] | None = None,
     ) -> None:
         assert cfg.inbox is not None and cfg.results is not None
         self.cfg, self.ledger, self.secret = cfg, ledger, secret
         self.inbox, self.results = cfg.inbox, cfg.results
-        self.once, self.clock = once, clock
+        # in-run deadlines (settle, retry, heartbeat) must not jump with the wall clock
+        self.once, self.clock = once, clock or steady_clock()
         self.tuning = tuning or Tuning(retry_base_seconds=cfg.retry_seconds)
         self.wakes: queue.SimpleQueue[str] = queue.SimpleQueue()
         self.signals = Signals(self.wakes.put)
@@ -132,13 +132,7 @@ class Daemon:
     def run(self) -> int:
         """Run until stopped (or, with ``once``, until the inbox's series are handled)."""
         started = self.clock()
-        results.remove_incomplete(self.results)  # logs each folder it removes
-        # we hold the state folder's lock: every job of an earlier daemon is ours to requeue,
-        # whatever its old worker's pid seems to say (a zombie, a reused pid...)
-        again = self.ledger.requeue_orphans(started, held=())
-        if again:
-            log.warning("%d series were running when the daemon stopped; queued again",
-                        len(again))  # fmt: skip
+        reconcile(self.ledger, self.cfg, self.files, started)
         pool = WorkerPool(
             self.cfg, self.secret, self.cfg.workers, tasks_per_worker=self.tuning.tasks_per_worker
         )
@@ -163,6 +157,7 @@ class Daemon:
 
     def _loop(self, pool: WorkerPool, observer: InboxObserver | None, started: float) -> int:
         last_beat = last_check = 0.0
+        last_state = ""
         draining = False
         while True:
             now = self.clock()
@@ -193,10 +188,10 @@ class Daemon:
                     soon = now + self.tuning.event_delay_seconds
                     self.intake.next_scan = min(self.intake.next_scan, soon)
             now = self.clock()
-            if now - last_beat >= self.tuning.heartbeat_seconds:
-                state = "stopping" if draining else "running"
+            state = "stopping" if draining else "paused" if self.jobs.paused else "running"
+            if now - last_beat >= self.tuning.heartbeat_seconds or state != last_state:
                 self.ledger.beat(os.getpid(), state, now, inbox=str(self.inbox), started=started)
-                last_beat = now
+                last_beat, last_state = now, state
             if now - last_check >= self.tuning.supervise_seconds:
                 self.supervise(pool, observer, now)
                 last_check = now
@@ -211,6 +206,7 @@ class Daemon:
         """
         if observer is not None:
             observer.check()
+        self.jobs.check_space()
         held = {s.job_id for s in pool.busy() if s.job_id is not None}
         for job_id in self.ledger.requeue_orphans(now, held=held):
             row = self.ledger.series(self.ledger.job(job_id).series_id)
@@ -218,7 +214,8 @@ class Daemon:
                         row.series_key)  # fmt: skip
 
     def _retry_pending(self) -> bool:
-        return any(j.attempts > 0 for j in self.ledger.jobs_in(JobState.QUEUED))
+        # a retry of ours is pending (re-runs of the archive are not this run's business)
+        return any(j.attempts > 0 and j.priority >= 0 for j in self.ledger.jobs_in(JobState.QUEUED))
 
 
 # ---- entry ------------------------------------------------------------------------------

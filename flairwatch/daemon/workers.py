@@ -43,6 +43,7 @@ TRANSIENT_ERRNOS = frozenset(
     {errno.ENOSPC, errno.EDQUOT, errno.EIO, errno.ESTALE, errno.ETIMEDOUT, errno.EHOSTDOWN,
      errno.EHOSTUNREACH, errno.ENETUNREACH, errno.ENOTCONN, errno.EAGAIN}
 )  # fmt: skip
+NO_SPACE_ERRNOS = frozenset({errno.ENOSPC, errno.EDQUOT})
 _PR_SET_PDEATHSIG = 1
 _THREAD_ENV = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS")
 
@@ -72,6 +73,7 @@ class Report:
     seconds: float = 0.0
     rss_kb: int = 0
     retiring: bool = False
+    no_space: bool = False  # the disk was full (ENOSPC, EDQUOT): not the series' fault
 
 
 def current_rss_kb() -> int:
@@ -101,7 +103,8 @@ def classify(exc: BaseException) -> Report:
         return Report("failed", message=str(exc), transient=exc.transient)
     if isinstance(exc, OSError):
         text = f"{exc.strerror or exc}" + (f": {exc.filename}" if exc.filename else "")
-        return Report("failed", message=text, transient=exc.errno in TRANSIENT_ERRNOS)
+        return Report("failed", message=text, transient=exc.errno in TRANSIENT_ERRNOS,
+                      no_space=exc.errno in NO_SPACE_ERRNOS)  # fmt: skip
     if isinstance(exc, FlairwatchError):
         return Report("failed", message=str(exc))
     return Report("failed", message=f"unexpected {type(exc).__name__}: {exc}")

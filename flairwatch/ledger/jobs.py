@@ -7,13 +7,12 @@ every move is a compare-and-set in one short transaction, so two processes never
 from __future__ import annotations
 
 import sqlite3
-from collections.abc import Callable, Collection, Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from enum import StrEnum
 from typing import Any
 
 from flairwatch.ledger.core import LedgerCore
-from flairwatch.ledger.owners import lock_is_free, remove_dead_lock
 
 
 class JobState(StrEnum):
@@ -268,103 +267,3 @@ class JobTables(LedgerCore):
                  summary.get("lesion_volume_ml"), summary.get("lesion_count"), int(adopted), now),
             )  # fmt: skip
         return True
-
-    def give_back(self, job_id: int, now: float) -> bool:
-        """Put a job this process claimed but could not hand to a worker back in the queue.
-
-        The attempt is not counted: the series never ran. False when the job is not ours.
-        """
-        mine = self.owner.token if self.owner else None
-        with self.transaction() as db:
-            cur = db.execute(
-                """UPDATE jobs SET state=?, not_before=?, worker_pid=NULL, owner=NULL,
-                   owner_lock=NULL, attempts=MAX(attempts - 1, 0)
-                   WHERE id=? AND state=? AND owner IS ?""",
-                (JobState.QUEUED.value, now, job_id, JobState.RUNNING.value, mine),
-            )
-            return cur.rowcount == 1
-
-    def requeue_orphans(self, now: float, *, held: Collection[int] | None = None) -> list[int]:
-        """Put running jobs whose owner is gone back in the queue; returns their ids.
-
-        A running job is an orphan when nobody holds its owner's lock file, when it was claimed
-        under this process's lock by an earlier run (a daemon that takes ``daemon.lock`` owns
-        every job of the daemons before it), when it has no owner (rows from before schema 3),
-        or, given ``held`` (the jobs this process's workers hold), when it is this run's own but
-        no worker holds it. Process ids are never consulted. The orphan's attempt is given back:
-        the series did not fail, its owner died.
-        """
-        state_dir = self.path.parent
-        me = self.owner
-        found: list[tuple[int, str | None]] = []
-        free: dict[str, bool] = {}
-        with self.transaction() as db:
-            rows = db.execute(
-                "SELECT id, owner, owner_lock FROM jobs WHERE state = ?", (JobState.RUNNING.value,)
-            ).fetchall()
-            for job, token, lock in rows:
-                if me is not None and token == me.token:
-                    orphan = held is not None and job not in held
-                elif lock is None or (me is not None and lock == me.lock):
-                    orphan = True
-                else:
-                    if lock not in free:
-                        free[lock] = lock_is_free(state_dir, lock)
-                    orphan = free[lock]
-                if orphan:
-                    found.append((job, token))
-            for job, token in found:
-                db.execute(
-                    """UPDATE jobs SET state=?, not_before=?, worker_pid=NULL, owner=NULL,
-                       owner_lock=NULL, attempts=MAX(attempts - 1, 0)
-                       WHERE id=? AND state=? AND owner IS ?""",
-                    (JobState.QUEUED.value, now, job, JobState.RUNNING.value, token),
-                )
-        for lock, is_free in free.items():
-            if is_free:
-                remove_dead_lock(state_dir, lock)
-        return [job for job, _token in found]
-
-    def retry_ended(
-        self,
-        now: float,
-        *,
-        series_keys: Collection[str] = (),
-        failed_since: float | None = None,
-        refused: bool = False,
-    ) -> list[tuple[str, str, str | None]]:
-        """Queue failed (or refused) series again; returns (series key, old state, old error).
-
-        A series is chosen by its key (failed or refused), or, with ``failed_since``, every
-        series that failed since then (and was refused, with ``refused``). Only a series'
-        latest revision and its latest job count: an old failure that a later run superseded
-        is history. The job starts afresh: no attempts, no error, and a new arrival's job no
-        longer names a model, so the daemon runs it with the model it has now.
-        """
-        ended = [JobState.FAILED.value] + ([JobState.REFUSED.value] if refused else [])
-        rows = self.query(
-            """SELECT j.id, s.series_key, j.state, j.error, j.finished FROM jobs j
-               JOIN series s ON s.id = j.series_id
-               WHERE j.id = (SELECT MAX(k.id) FROM jobs k WHERE k.series_id = s.id)
-                 AND s.revision = (SELECT MAX(t.revision) FROM series t
-                                   WHERE t.study_uid = s.study_uid AND t.series_uid = s.series_uid)
-                 AND j.state IN (?, ?)""",
-            (JobState.FAILED.value, JobState.REFUSED.value),
-        )
-        chosen = [
-            r
-            for r in rows
-            if r[1] in series_keys
-            or (failed_since is not None and r[2] in ended and (r[4] or 0.0) >= failed_since)
-        ]
-        with self.transaction() as db:
-            for job_id, _key, state, _error, _finished in chosen:
-                db.execute(
-                    """UPDATE jobs SET state=?, attempts=0, not_before=?, queued=?, error=NULL,
-                       finished=NULL, started=NULL, owner=NULL, owner_lock=NULL,
-                       model_name=CASE WHEN priority >= 0 THEN NULL ELSE model_name END,
-                       model_version=CASE WHEN priority >= 0 THEN NULL ELSE model_version END
-                       WHERE id=? AND state=?""",
-                    (JobState.QUEUED.value, now, now, job_id, state),
-                )
-        return [(key, state, error) for _id, key, state, error, _f in chosen]

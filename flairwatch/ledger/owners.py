@@ -12,7 +12,7 @@ runs, and writes the file's name and a fresh run token on each job it claims:
   it claims a job through :class:`~flairwatch.ledger.store.Ledger`.
 
 A running job whose owner's lock nobody holds was left by a process that is gone: it goes back
-to the queue (:meth:`flairwatch.ledger.jobs.JobTables.requeue_orphans`).
+to the queue (:meth:`flairwatch.ledger.repair.RepairTables.requeue_orphans`).
 """
 
 from __future__ import annotations

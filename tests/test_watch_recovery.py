@@ -1,0 +1,171 @@
+"""Recovery and health: the running-time limit in status, the retry command, start-up repairs
+after a crash, and in-run deadlines that do not follow wall-clock steps. Real SQLite ledgers
+and real files."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+import time
+from collections.abc import Callable
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from flairwatch.config import Config
+from flairwatch.daemon.inbox import InboxScanner
+from flairwatch.daemon.inputs import InboxFiles
+from flairwatch.daemon.reconcile import finish_deletions, fix_pointers, remove_half_built
+from flairwatch.daemon.status import gather, problems, running_limit
+from flairwatch.daemon.tuning import steady_clock
+from flairwatch.engine import results
+from flairwatch.ledger.store import FileRow, JobState, Ledger
+
+
+def _fixed_keys(series_key: str) -> Callable[[int], tuple[str, str, str]]:
+    return lambda _revision: ("s", "t", series_key)
+
+
+def test_running_limit_is_the_larger_of_floor_and_median_multiple() -> None:
+    # the median of an even count is the mean of the middle two (numpy.median agrees)
+    recent = [10.0, 30.0, 200.0, 220.0]
+    assert running_limit(recent, 600.0, 5.0) == max(600.0, 5 * float(np.median(recent))) == 600.0
+    slow = [150.0] * 49 + [1e6]  # one outlier does not move a median
+    assert running_limit(slow, 600.0, 5.0) == 5 * float(np.median(slow)) == 750.0
+    assert running_limit([], 600.0, 5.0) == 600.0
+    beat: dict[str, object] = {"pid": 1, "host": "h", "state": "running", "beat": 1000.0}
+    late = problems(beat, 1010.0, oldest_wait_s=None, last_activity=1000.0, outcomes=[],
+                    stale_s=60, stuck_s=600, failure_run=3, running=[("e1", 1500.0)],
+                    running_limit_s=600.0)  # fmt: skip
+    assert late == [
+        "series e1 has been running for 25 min, longer than the 10 min limit: a worker may be "
+        "stuck; see the daemon's log"
+    ]
+
+
+def test_status_flags_a_series_running_too_long(tmp_path: Path) -> None:
+    with Ledger.open(tmp_path) as led:
+        _, job = led.new_revision("1.2", "9.1", _fixed_keys("e9.1"), 100.0)
+        led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 100.0)
+        assert led.claim_next(100.0, "m", "1", 7) is not None
+        led.beat(42, "running", 1300.0, inbox="/in", started=90.0)
+        assert gather(led, 600.0).healthy  # running 500 s: under the 600 s floor
+        report = gather(led, 1420.0, overdue_s=600.0)
+    assert report.running_limit_s == 600.0
+    assert any("series e9.1 has been running for 22 min" in p for p in report.problems)
+
+
+def test_retry_queues_failed_and_refused_series_again(tmp_path: Path) -> None:
+    from flairwatch.cli import main
+
+    outcomes = {"9.1": ("failed", 100.0), "9.2": ("refused", 200.0), "9.3": ("failed", 50.0)}
+    with Ledger.open(tmp_path) as led:
+        ids = {}
+        for uid, (outcome, when) in outcomes.items():
+            _, job = led.new_revision("1.2", uid, _fixed_keys(f"e{uid}"), 10.0)
+            led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 10.0)
+            assert led.claim_next(20.0, "m", "1", 7) is not None
+            target = JobState.FAILED if outcome == "failed" else JobState.REFUSED
+            led.move_job(job.id, [JobState.RUNNING], target, when, error=f"{outcome} here")
+            ids[uid] = job.id
+    state = ["--state", str(tmp_path)]
+    # 1970-01-01T00:01:40Z is epoch second 100: only the failure at 100 s, not the refusal
+    assert main(["retry", *state, "--failed-since", "1970-01-01T00:01:40"]) == 0
+    with Ledger.open(tmp_path) as led:
+        again = led.job(ids["9.1"])
+        assert (again.state, again.attempts, again.error) == (JobState.QUEUED, 0, None)
+        assert led.query("SELECT model_name FROM jobs WHERE id = ?", (again.id,)) == [(None,)]
+        assert led.job(ids["9.2"]).state is JobState.REFUSED
+        assert led.job(ids["9.3"]).state is JobState.FAILED
+    # by key, a refused series too; an unknown key is reported and makes the exit code 1
+    assert main(["retry", *state, "e9.2", "e-unknown"]) == 1
+    with Ledger.open(tmp_path) as led:
+        assert led.job(ids["9.2"]).state is JobState.QUEUED
+    assert main(["retry", *state, "--failed-since", "yesterday"]) == 2
+
+
+def test_steady_clock_ignores_wall_clock_steps(monkeypatch: pytest.MonkeyPatch) -> None:
+    clock = steady_clock()
+    first = clock()
+    real_time = time.time
+    monkeypatch.setattr(time, "time", lambda: real_time() + 3600.0)  # a clock step of one hour
+    assert 0.0 <= clock() - first < 5.0
+    monkeypatch.setattr(time, "time", lambda: real_time() - 3600.0)
+    assert 0.0 <= clock() - first < 5.0
+
+
+def test_start_up_repairs_pointers_and_leftover_inputs(tmp_path: Path) -> None:
+    inbox, out = tmp_path / "in", tmp_path / "out"
+    cfg = Config(inbox=inbox, results=out, state=tmp_path / "state", delete_inbox_files=True)
+    with Ledger.open(tmp_path / "state") as led:
+        folders = {}
+        for uid in ("9.1", "9.2"):
+            path = inbox / uid / "1.dcm"
+            path.parent.mkdir(parents=True)
+            path.write_bytes(b"x")
+            led.record_scan([FileRow(str(path), 1, 1, f"{uid}.1", "1.2", uid)], [], 1.0)
+            row, job = led.new_revision("1.2", uid, _fixed_keys(f"e{uid}"), 1.0)
+            led.take_files(row.id, "1.2", uid)
+            led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 1.0)
+            assert led.claim_next(2.0, "m", "1", 7) is not None
+            folder = out / "s" / "t" / f"e{uid}" / "m-1"
+            folder.mkdir(parents=True)
+            (folder / "summary.json").write_text("{}", encoding="utf-8")
+            summary = {"model": {"name": "m", "version": "1"}}
+            led.finish_done(job.id, str(folder), summary, adopted=False, seconds=1.0, now=3.0)
+            folders[uid] = folder
+        # a late instance of 9.2 makes a second revision, still settling: its inputs must stay
+        late = inbox / "9.2" / "2.dcm"
+        late.write_bytes(b"y")
+        led.record_scan([FileRow(str(late), 1, 1, "9.2.2", "1.2", "9.2")], [], 4.0)
+        row2, _ = led.new_revision("1.2", "9.2", _fixed_keys("e9.2-r2"), 4.0)
+        led.take_files(row2.id, "1.2", "9.2")
+        # the crash: 9.1's pointer never written, 9.2's points at something else
+        results.set_current(folders["9.2"].parent, "old-0")
+        files = InboxFiles(cfg, led, InboxScanner(inbox))
+        assert len(fix_pointers(led, cfg, 5.0)) == 2
+        for folder in folders.values():
+            assert results.current_version(folder.parent) == folder.name
+        assert fix_pointers(led, cfg, 6.0) == []  # nothing left to repair
+        assert len(finish_deletions(led, cfg, files)) == 1
+    assert not (inbox / "9.1" / "1.dcm").exists()
+    assert (inbox / "9.2" / "1.dcm").exists() and late.exists()
+
+
+# A re-run process: claims one job through its own Ledger (and run lock), then waits.
+CLAIMER = """
+import sys, time
+from pathlib import Path
+from flairwatch.ledger.store import Ledger
+led = Ledger.open(Path(sys.argv[1]))
+job = led.claim_next(time.time(), "m", "1", 4242)
+print(job.id if job else 0, flush=True)
+time.sleep(600)
+"""
+
+
+def test_start_up_keeps_the_folder_a_live_rerun_builds(tmp_path: Path) -> None:
+    out = tmp_path / "out"
+    cfg = Config(inbox=tmp_path / "in", results=out, state=tmp_path / "state")
+    with Ledger.open(tmp_path / "state") as led:
+        for uid in ("9.1", "9.2"):
+            _, job = led.new_revision("1.2", uid, _fixed_keys(f"e{uid}"), 1.0)
+            led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 1.0)
+    proc = subprocess.Popen([sys.executable, "-c", CLAIMER, str(tmp_path / "state")],
+                            stdout=subprocess.PIPE, text=True)  # fmt: skip
+    try:
+        assert proc.stdout is not None and int(proc.stdout.readline()) == 1  # series 9.1
+        live = out / "s" / "t" / "e9.1" / ".building-m-1-abcd"
+        dead = out / "s" / "t" / "e9.2" / ".building-m-1-ef01"
+        for folder in (live, dead):
+            folder.mkdir(parents=True)
+        with Ledger.open(tmp_path / "state") as led:
+            assert remove_half_built(led, cfg) == [dead]
+        assert live.is_dir() and not dead.exists()
+    finally:
+        proc.kill()
+        proc.wait()
+    with Ledger.open(tmp_path / "state") as led:  # the re-run is gone: its folder is litter now
+        led.requeue_orphans(2.0)
+        assert remove_half_built(led, cfg) == [live]
