@@ -42,32 +42,38 @@ class RepairTables(JobTables):
         me = self.owner
         found: list[tuple[int, str | None]] = []
         free: dict[str, bool] = {}
-        with self.transaction() as db:
-            rows = db.execute(
-                "SELECT id, owner, owner_lock FROM jobs WHERE state = ?", (JobState.RUNNING.value,)
-            ).fetchall()
-            for job, token, lock in rows:
-                if me is not None and token == me.token:
-                    orphan = held is not None and job not in held
-                elif lock is None or (me is not None and lock == me.lock):
-                    orphan = True
-                else:
-                    if lock not in free:
-                        free[lock] = lock_is_free(state_dir, lock)
-                    orphan = free[lock]
-                if orphan:
-                    found.append((job, token))
-            for job, token in found:
-                db.execute(
-                    """UPDATE jobs SET state=?, not_before=?, worker_pid=NULL, owner=NULL,
-                       owner_lock=NULL, attempts=MAX(attempts - 1, 0)
-                       WHERE id=? AND state=? AND owner IS ?""",
-                    (JobState.QUEUED.value, now, job, JobState.RUNNING.value, token),
-                )
+        # decide on a plain read (this runs every few seconds; most times there is nothing to
+        # do), then move each orphan with a compare-and-set on its state and owner
+        rows = self.query(
+            "SELECT id, owner, owner_lock FROM jobs WHERE state = ?", (JobState.RUNNING.value,)
+        )
+        for job, token, lock in rows:
+            if me is not None and token == me.token:
+                orphan = held is not None and job not in held
+            elif lock is None or (me is not None and lock == me.lock):
+                orphan = True
+            else:
+                if lock not in free:
+                    free[lock] = lock_is_free(state_dir, lock)
+                orphan = free[lock]
+            if orphan:
+                found.append((job, token))
+        moved = []
+        if found:
+            with self.transaction() as db:
+                for job, token in found:
+                    cur = db.execute(
+                        """UPDATE jobs SET state=?, not_before=?, worker_pid=NULL, owner=NULL,
+                           owner_lock=NULL, attempts=MAX(attempts - 1, 0)
+                           WHERE id=? AND state=? AND owner IS ?""",
+                        (JobState.QUEUED.value, now, job, JobState.RUNNING.value, token),
+                    )
+                    if cur.rowcount == 1:
+                        moved.append(job)
         for lock, is_free in free.items():
             if is_free:
                 remove_dead_lock(state_dir, lock)
-        return [job for job, _token in found]
+        return moved
 
     def retry_ended(
         self,
