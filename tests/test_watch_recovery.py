@@ -169,3 +169,30 @@ def test_start_up_keeps_the_folder_a_live_rerun_builds(tmp_path: Path) -> None:
     with Ledger.open(tmp_path / "state") as led:  # the re-run is gone: its folder is litter now
         led.requeue_orphans(2.0)
         assert remove_half_built(led, cfg) == [live]
+
+
+def test_adoption_only_of_a_result_of_the_same_inputs_and_settings(
+    tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    from dataclasses import replace
+
+    from flairwatch.engine.pipeline import Engine, source_of_series
+    from tests.daemon_fixtures import copy_in, stage_series
+
+    copy_in(stage_series(tmp_path / "staging", "a"), tmp_path / "inbox", "a")
+    (series,) = InboxScanner(tmp_path / "inbox").scan().series.values()
+    cfg = Config(results=tmp_path / "out", model=tiny_model_manifest, threads=1)
+    first = Engine(cfg).process(series, tmp_path / "out", secret=b"k" * 32)
+    assert not first.adopted and len(first.summary["fingerprint"]) == 64
+    # the same inputs and settings after a crash: the folder is adopted untouched
+    again = Engine(cfg).process(series, tmp_path / "out", secret=b"k" * 32)
+    assert again.adopted and again.result_dir == first.result_dir
+    # another threshold under the same model version: never adopted, made again, old kept
+    other = Engine(replace(cfg, threshold=0.9)).process(series, tmp_path / "out", secret=b"k" * 32)
+    assert not other.adopted and other.result_dir == first.result_dir
+    assert other.summary["threshold"] == 0.9
+    (aside,) = first.result_dir.parent.glob(f"{results.ASIDE_PREFIX}*")
+    assert (aside / "summary.json").is_file()
+    # one instance fewer: another series content, another fingerprint
+    fewer = replace(series, files=series.files[1:])
+    assert Engine(cfg).fingerprint(source_of_series(fewer)) != first.summary["fingerprint"]

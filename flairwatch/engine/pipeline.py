@@ -10,6 +10,7 @@ through here.
 from __future__ import annotations
 
 import hashlib
+import json
 import logging
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -74,6 +75,7 @@ class Source:
     study_id: str  # Study Instance UID, or the NIfTI file's content hash
     series_id: str  # Series Instance UID, or the NIfTI file's content hash
     label: str  # short human-readable name for messages (never used in paths)
+    inputs: tuple[tuple[str, int], ...] = ()  # (SOP Instance UID, file size) of each DICOM file
 
 
 def source_of_series(series: Series) -> Source:
@@ -81,7 +83,8 @@ def source_of_series(series: Series) -> Source:
     label = f"series {h.series_uid[-12:]}"
     if h.series_description:
         label += f" ({h.series_description[:40]})"
-    return Source("dicom", h, h.study_uid, h.series_uid, label)
+    inputs = tuple(sorted((f.sop_uid or f.path.name, f.size) for f in series.files))
+    return Source("dicom", h, h.study_uid, h.series_uid, label, inputs)
 
 
 def source_of_nifti(path: Path) -> Source:
@@ -111,6 +114,23 @@ class Engine:
     @property
     def model_version(self) -> str:
         return self.manifest.version
+
+    def fingerprint(self, source: Source) -> str:
+        """Hash of what a result depends on: the input instances, the model file, the settings.
+
+        Stored in ``summary.json``; a complete folder is adopted after a crash only when its
+        fingerprint matches, so a result of other inputs or settings is never taken for ours.
+        """
+        facts = {
+            "series": [source.study_id, source.series_id],
+            "inputs": [list(i) for i in source.inputs],
+            "model_sha256": self.manifest.sha256,
+            "threshold": self.threshold,
+            "min_lesion_mm3": self.cfg.min_lesion_mm3,
+            "connectivity": self.cfg.connectivity,
+            "periventricular_mm": self.cfg.periventricular_mm,
+        }
+        return hashlib.sha256(json.dumps(facts, sort_keys=True).encode("utf-8")).hexdigest()
 
     def analyse(self, volume: Volume) -> Analysis:
         """:func:`analyse` with this engine's model and post-processing settings."""
@@ -159,9 +179,16 @@ class Engine:
         revision: int,
     ) -> Outcome:
         final = self.version_dir(results_root, source, secret=secret, revision=revision)
+        fingerprint = self.fingerprint(source)
         if results.is_complete(final):
-            log.info("%s: complete result found, adopting %s", source.label, final)
-            return Outcome(final, results.read_summary(final), adopted=True)
+            found = results.read_summary(final)
+            # no fingerprint: made before flairwatch 0.2.0, adopted as it always was
+            if found.get("fingerprint") in (None, fingerprint):
+                log.info("%s: complete result found, adopting %s", source.label, final)
+                return Outcome(final, found, adopted=True)
+            aside = results.set_aside(final)
+            log.warning("%s: %s was made from other inputs or settings; kept as %s, made again",
+                        source.label, final, aside.name)  # fmt: skip
         timings: dict[str, float] = {}
         with timed(timings, "load"):
             volume = read()
@@ -173,7 +200,8 @@ class Engine:
                 title = self._title(final, analysis)
                 threads = self.segmenter.threads
                 timings.update(write_files(tmp, volume, analysis, title, threads=threads))
-            return self._summary(source, volume, analysis, final, revision, secret, timings)
+            summary = self._summary(source, volume, analysis, final, revision, secret, timings)
+            return summary | {"fingerprint": fingerprint}
 
         folder, summary, adopted = results.build_version_folder(final, fill)
         if not adopted and results.current_version(folder.parent) is None:

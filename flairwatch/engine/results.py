@@ -26,6 +26,7 @@ log = logging.getLogger(__name__)
 SUMMARY_FILE = "summary.json"
 CURRENT_FILE = "current_version.txt"
 TEMP_PREFIX = ".building-"
+ASIDE_PREFIX = ".replaced-"  # a complete folder of other inputs or settings, kept for audit
 # results are health data: group may read, others nothing
 FILE_MODE = 0o640
 DIR_MODE = 0o750
@@ -102,6 +103,14 @@ def build_version_folder(
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return final, summary, False
+
+
+def set_aside(version_dir: Path) -> Path:
+    """Rename a complete version folder out of the way (hidden, never deleted); returns it."""
+    aside = version_dir.with_name(f"{ASIDE_PREFIX}{version_dir.name}-{uuid.uuid4().hex[:8]}")
+    os.rename(version_dir, aside)
+    fsync_dir(version_dir.parent)
+    return aside
 
 
 def set_current(series_dir: Path, version_name: str) -> None:
