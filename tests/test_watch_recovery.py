@@ -196,3 +196,20 @@ def test_adoption_only_of_a_result_of_the_same_inputs_and_settings(
     # one instance fewer: another series content, another fingerprint
     fewer = replace(series, files=series.files[1:])
     assert Engine(cfg).fingerprint(source_of_series(fewer)) != first.summary["fingerprint"]
+
+
+def test_a_missing_inbox_is_logged_once_per_change(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    from flairwatch.daemon.watch import Daemon
+
+    cfg = Config(inbox=tmp_path / "in", results=tmp_path / "out", state=tmp_path / "state")
+    with Ledger.open(tmp_path / "state") as led, caplog.at_level("INFO"):
+        daemon = Daemon(cfg, led, b"k" * 32)
+        for now in (1.0, 400.0, 800.0):  # three rescans while the share is away
+            daemon.intake.scan(now)
+        (tmp_path / "in").mkdir()
+        daemon.intake.scan(1200.0)
+        daemon.intake.scan(1600.0)
+    assert caplog.text.count("is missing") == 1
+    assert caplog.text.count("is back") == 1

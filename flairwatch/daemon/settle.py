@@ -41,14 +41,21 @@ class Intake:
         self.last_scan: Scan | None = None
         self.next_scan = 0.0
         self.once_targets: set[tuple[str, str]] = set()
+        self.inbox_missing = False  # logged once when it goes, once when it comes back
 
     def scan(self, now: float) -> None:
         try:
             scan = self.scanner.scan()
         except InputRejected:
-            log.warning("inbox %s is missing; will look again", self.inbox)
+            if not self.inbox_missing:
+                log.warning("inbox %s is missing; will look again every %.0f s", self.inbox,
+                            self.cfg.rescan_seconds)  # fmt: skip
+            self.inbox_missing = True
             self.next_scan = now + self.cfg.rescan_seconds
             return
+        if self.inbox_missing:
+            log.warning("inbox %s is back", self.inbox)
+            self.inbox_missing = False
         known = self.ledger.known_files()
         changed = [r for r in file_rows(scan) if _unchanged(known.get(r.path)) != r]
         for row in changed:
