@@ -29,7 +29,7 @@ def _scripts() -> tuple[ModuleType, ModuleType]:
 
 
 def _fake_case(rng: np.random.Generator, k: int = 5) -> dict[str, np.ndarray]:
-    """A head-like disc near 1 with one bright blob (WMH) and an ignore patch, (K, 224, 224)."""
+    """A head-like disc near 1 with a bright blob (WMH), an ignore patch and a dark ventricle."""
     yy, xx = np.mgrid[:224, :224]
     head = ((yy - 112) ** 2 + (xx - 112) ** 2) < 80**2
     lesion = ((yy - 100) ** 2 + (xx - 120) ** 2) < 6**2
@@ -39,7 +39,10 @@ def _fake_case(rng: np.random.Generator, k: int = 5) -> dict[str, np.ndarray]:
     wmh[1:4, lesion] = 1
     wmh[2, 150:155, 100:105] = 2
     icv = np.broadcast_to(head, (k, 224, 224)).astype(np.uint8)
-    return {"image": image.astype(np.float16), "wmh": wmh, "icv": icv}
+    vent = np.zeros((k, 224, 224), np.uint8)
+    vent[:, 105:125, 95:105] = 1  # a dark slab standing in for a lateral ventricle
+    image[:, vent[0] == 1] = 0.2
+    return {"image": image.astype(np.float16), "wmh": wmh, "icv": icv, "vent": vent}
 
 
 @pytest.fixture()
@@ -81,17 +84,17 @@ def test_export_round_trip(cache: Path, tmp_path: Path) -> None:
     _run(train_model, cache, out, "--minutes", "5", "--max-steps", "2")
     _run(train_model, cache, out, "--export", "--eval-cases", "0", "--timing-slices", "8")
     manifest = load_manifest(out / "model.yaml")  # hash and schema, as the runtime checks them
-    assert manifest.name == "wmh-synth" and manifest.version == "0.1.0"
-    assert manifest.output_channels == ("wmh", "intracranial")
+    assert manifest.name == "flairwatch-wmh" and manifest.version == "0.2.0"
+    assert manifest.output_channels == ("wmh", "intracranial", "ventricles")
     assert manifest.grid.shape == (224, 224) and manifest.channels == 3
     assert 0.0 < manifest.threshold < 1.0
     assert "research" in manifest.intended_use
     segmenter = Segmenter(manifest, threads=1)
     x = np.random.default_rng(3).random((3, 3, 224, 224), dtype=np.float32)
     got = segmenter.predict(x)
-    assert got.shape == (3, 2, 224, 224)  # (K, outputs, H, W) as the manifest declares
+    assert got.shape == (3, 3, 224, 224)  # (K, outputs, H, W) as the manifest declares
     state = torch.load(out / "training-checkpoint.pt", weights_only=False)
-    net = train_model.build_net(tuple(state["widths"]))
+    net = train_model.build_net(tuple(state["widths"]), n_out=len(state["outputs"]))
     net.load_state_dict(state["model"])
     net.eval()
     with torch.no_grad():

@@ -1,11 +1,14 @@
 """Write a phantom as a case folder (DESIGN.md "Case folders").
 
 ```
-<case_dir>/image/*.dcm               DICOM series (one file per slice)
-<case_dir>/wmh_reference.nii.gz      uint8 0/1 truth on the series grid (RAS affine)
-<case_dir>/intracranial_mask.nii.gz  uint8 0/1 on the series grid
-<case_dir>/case.json                 acquisition facts, generator parameters; written last
+<case_dir>/image/*.dcm                   DICOM series (one file per slice)
+<case_dir>/wmh_reference.nii.gz          uint8 0/1 WMH truth on the series grid (RAS affine)
+<case_dir>/ventricles_reference.nii.gz   uint8 0/1 lateral ventricles on the series grid
+<case_dir>/intracranial_mask.nii.gz      uint8 0/1 on the series grid
+<case_dir>/case.json                     acquisition facts, generator parameters; written last
 ```
+The reference layout is flairwatch's own: the WMH file holds only 0 and 1; voxels that must not
+be scored go into a separate optional ``exclude_mask.nii.gz`` (0/1), which phantoms never need.
 NIfTI affines are the RAS form of the series' LPS grid, so a mask lies voxel for voxel on the
 image that SimpleITK's series reader builds from the DICOM files.
 """
@@ -32,6 +35,8 @@ CASE_JSON = "case.json"
 IMAGE_DIR = "image"
 WMH_FILE = "wmh_reference.nii.gz"
 ICV_FILE = "intracranial_mask.nii.gz"
+VENTRICLES_FILE = "ventricles_reference.nii.gz"
+EXCLUDE_FILE = "exclude_mask.nii.gz"  # optional in case folders; phantoms have nothing to exclude
 CAUTION = (
     "Synthetic phantom for research and software testing only; not a patient scan, "
     "not for diagnosis. Anatomy derived from the ICBM152 2009 template: see NOTICE-ICBM152.txt."
@@ -173,6 +178,10 @@ def write_case(
     )
     write_nifti(case.wmh, case_dir / WMH_FILE)
     write_nifti(case.intracranial, case_dir / ICV_FILE)
+    names = {"image": IMAGE_DIR, "wmh_reference": WMH_FILE, "intracranial_mask": ICV_FILE}
+    if case.ventricles is not None:
+        write_nifti(case.ventricles, case_dir / VENTRICLES_FILE)
+        names["ventricles_reference"] = VENTRICLES_FILE
     acq = case.params.acquisition
     payload: dict[str, Any] = {
         "generator_version": GENERATOR_VERSION,
@@ -194,8 +203,13 @@ def write_case(
             "lesion_volume_ml": round(case.lesion_volume_ml, 4),
             "intracranial_volume_ml": round(case.intracranial_volume_ml, 2),
             "lesion_voxels": int(case.wmh.data.sum()),
+            **(
+                {"ventricle_volume_ml": round(case.ventricle_volume_ml, 2)}
+                if case.ventricle_volume_ml is not None
+                else {}
+            ),
         },
         "params": dataclasses.asdict(case.params),
-        "files": {"image": IMAGE_DIR, "wmh_reference": WMH_FILE, "intracranial_mask": ICV_FILE},
+        "files": names,
     }
     _write_json_last(case_dir / CASE_JSON, payload)

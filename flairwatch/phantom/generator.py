@@ -39,6 +39,10 @@ INTERMEDIATE_MM = 1.0
 TEXTURE_AMPLITUDE = 0.03
 NOISE_GRAIN_MM = 0.8  # acquired in-plane resolution below which noise is interpolated
 ICV_STEP = 2  # the intracranial mask is read on every 2nd intermediate pixel
+# Labels of PhantomCase.tissue: outside the intracranial space, CSF outside the ventricles,
+# ventricular CSF, grey matter, white matter, WMH. Training uses them to remap intensities per
+# tissue; nothing at runtime reads them.
+TISSUE_CLASSES: tuple[str, ...] = ("outside", "csf", "ventricle", "gm", "wm", "wmh")
 
 
 @dataclass(frozen=True, eq=False)
@@ -47,18 +51,30 @@ class PhantomCase:
 
     ``image`` is float32 signal in stored pixel units (WM about ``params.signal_scale``);
     ``wmh`` the truth mask (uint8 0/1: lesion partial-volume fraction >= 0.5);
-    ``intracranial`` the intracranial mask (uint8 0/1). All three share the acquisition grid.
+    ``intracranial`` the intracranial mask (uint8 0/1); ``ventricles`` the lateral ventricles
+    (uint8 0/1: ventricular CSF fraction >= 0.5, enlarged with atrophy); ``tissue`` the dominant
+    tissue per voxel (uint8, :data:`TISSUE_CLASSES`). All share the acquisition grid. The image
+    does not depend on whether the last two are made.
     """
 
     image: Volume
     wmh: Volume
     intracranial: Volume
     params: PhantomParams
+    ventricles: Volume | None = None
+    tissue: Volume | None = None
 
     @property
     def lesion_volume_ml(self) -> float:
         """Truth lesion volume on the acquisition grid, mL."""
         return float(self.wmh.data.sum()) * self.wmh.voxel_volume_mm3 / 1000.0
+
+    @property
+    def ventricle_volume_ml(self) -> float | None:
+        """Lateral-ventricle volume on the acquisition grid, mL (None when not made)."""
+        if self.ventricles is None:
+            return None
+        return float(self.ventricles.data.sum()) * self.ventricles.voxel_volume_mm3 / 1000.0
 
     @property
     def intracranial_volume_ml(self) -> float:
@@ -100,8 +116,13 @@ def _flair(params: PhantomParams) -> Sequence:
 
 
 def _render(
-    params: PhantomParams, seq: Sequence, *, with_truth: bool
-) -> tuple[Volume, Volume | None, Volume | None]:
+    params: PhantomParams,
+    seq: Sequence,
+    *,
+    with_truth: bool,
+    with_ventricles: bool = False,
+    with_tissue: bool = False,
+) -> tuple[Volume, Volume | None, Volume | None, dict[str, Volume]]:
     tpl = load_template(params.template_mm)
     acq = params.acquisition
     seed = params.seed
@@ -175,9 +196,17 @@ def _render(
     )
     planes, weights = slice_profile(acq)
     maps: list[tuple[npt.NDArray[np.float32], tuple[slice, slice, slice] | None]] = [(signal, None)]
-    if with_truth and les.volume_ml > 0:
+    has_lesions = with_truth and les.volume_ml > 0
+    if has_lesions:
         maps.append(((subj.wm[les.box] * les.fraction).astype(np.float32), les.tpl_box))
+    extra: list[npt.NDArray[np.float32]] = []
+    if with_truth and (with_ventricles or with_tissue):
+        # extra maps are sampled separately: the image samples stay bit-identical
+        extra = [subj.vent_csf, subj.gm, subj.wm] if with_tissue else [subj.vent_csf]
+        maps += [(np.ascontiguousarray(m, dtype=np.float32), subj.box) for m in extra]
+    n_extra = len(extra)
     sampled = sample_maps(sampler, maps, int_shape, (box_uv[0], box_uv[1]), planes, weights)
+    extra_maps = sampled[len(sampled) - n_extra :] if n_extra else []
 
     # Fine tissue texture (+-3 %, ~2.5 mm grain) that the smooth average template lacks.
     texture = smooth_noise(int_shape, 2.5 / int_spacing[0], rng_for(seed, "texture"))
@@ -197,13 +226,41 @@ def _render(
     )
     image_vol = Volume(image.astype(np.float32), acq_aff)
     if not with_truth:
-        return image_vol, None, None
+        return image_vol, None, None, {}
     icv = _intracranial(tpl, sampler, int_shape, (box_uv[0], box_uv[1]), f, acq) >= 0.5
-    if len(sampled) > 1:
+    if has_lesions:
         wmh = upsample_inplane(sampled[1], f, (cols, rows)) >= 0.5
     else:
         wmh = np.zeros(icv.shape, dtype=bool)
-    return image_vol, Volume(wmh.astype(np.uint8), acq_aff), Volume(icv.astype(np.uint8), acq_aff)
+    extras: dict[str, Volume] = {}
+    if extra_maps:
+        upsampled = [upsample_inplane(m, f, (cols, rows)) for m in extra_maps]
+        extras["ventricles"] = Volume((upsampled[0] >= 0.5).astype(np.uint8), acq_aff)
+        if len(upsampled) == 3:
+            vent, gm, wm = upsampled
+            extras["tissue"] = Volume(_tissue_labels(icv, vent, gm, wm, wmh), acq_aff)
+    return (
+        image_vol,
+        Volume(wmh.astype(np.uint8), acq_aff),
+        Volume(icv.astype(np.uint8), acq_aff),
+        extras,
+    )
+
+
+def _tissue_labels(
+    icv: npt.NDArray[np.bool_],
+    vent: npt.NDArray[np.float32],
+    gm: npt.NDArray[np.float32],
+    wm: npt.NDArray[np.float32],
+    wmh: npt.NDArray[np.bool_],
+) -> npt.NDArray[np.uint8]:
+    """Dominant tissue per voxel as :data:`TISSUE_CLASSES` indices (CSF: the remainder)."""
+    csf = np.clip(1.0 - vent - gm - wm, 0.0, 1.0)
+    stack = np.stack([csf, vent, gm, wm])
+    labels = (np.argmax(stack, axis=0) + 1).astype(np.uint8)
+    labels[wmh] = TISSUE_CLASSES.index("wmh")
+    labels[~icv] = 0
+    return labels
 
 
 def _scanner_artefacts(
@@ -258,15 +315,35 @@ def _intracranial(
     return frac
 
 
-def generate(params: PhantomParams) -> PhantomCase:
-    """Render one FLAIR phantom with its WMH truth and intracranial mask (no disk writes)."""
-    image, wmh, icv = _render(params, _flair(params), with_truth=True)
+def generate(
+    params: PhantomParams, *, with_ventricles: bool = True, with_tissue: bool = False
+) -> PhantomCase:
+    """Render one FLAIR phantom with its WMH truth and intracranial mask (no disk writes).
+
+    ``with_ventricles`` adds the lateral-ventricle mask (a few % more time), ``with_tissue``
+    the ventricle mask and tissue labels for training (about a third more time). The image is
+    the same either way.
+    """
+    image, wmh, icv, extras = _render(
+        params,
+        _flair(params),
+        with_truth=True,
+        with_ventricles=with_ventricles,
+        with_tissue=with_tissue,
+    )
     assert wmh is not None and icv is not None
-    return PhantomCase(image=image, wmh=wmh, intracranial=icv, params=params)
+    return PhantomCase(
+        image=image,
+        wmh=wmh,
+        intracranial=icv,
+        params=params,
+        ventricles=extras.get("ventricles"),
+        tissue=extras.get("tissue"),
+    )
 
 
 def make_other_contrast(case: PhantomCase, contrast: str = "t1") -> Volume:
     """A non-FLAIR series of the same head on the same grid: ``"t1"`` or ``"t2"`` spin echo."""
     seq = other_sequence(contrast, case.params.acquisition.field_strength_t)
-    image, _, _ = _render(case.params, seq, with_truth=False)
+    image, _, _, _ = _render(case.params, seq, with_truth=False)
     return image

@@ -41,10 +41,10 @@ from flairwatch.training.data import (
     case_seed,
     find_cases,
     load_cached,
-    sample_batch,
 )
 from flairwatch.training.network import DEFAULT_WIDTHS, WmhNet, count_parameters
 from flairwatch.training.onnx_export import export_and_check
+from flairwatch.training.sampling import hard_negative_weights, sample_batch
 
 log = logging.getLogger("train_model")
 
@@ -52,6 +52,7 @@ GRID = GridSpec(spacing_mm=(1.0, 1.0), shape=(224, 224), through_plane="keep")
 NORM = Normalisation()
 CHANNELS = 3
 CHECKPOINT = "training-checkpoint.pt"
+OUTPUTS = ("wmh", "intracranial", "ventricles")  # output channels of a new network, in order
 
 
 def held_out_seeds() -> frozenset[int]:
@@ -135,18 +136,28 @@ def weighted_bce(logits: torch.Tensor, target: torch.Tensor, weight: torch.Tenso
     return (bce * weight).sum() / weight.sum().clamp(min=1.0)
 
 
+def _term(logits: torch.Tensor, target: torch.Tensor, weight: torch.Tensor) -> torch.Tensor:
+    """BCE + soft Dice where ``weight`` > 0; zero (still in the graph) when nothing is labelled."""
+    if float(weight.sum()) > 0:
+        return weighted_bce(logits, target, weight) + soft_dice_loss(logits, target, weight)
+    return logits.sum() * 0.0
+
+
 def segmentation_loss(
     logits: torch.Tensor, targets: dict[str, torch.Tensor]
-) -> tuple[torch.Tensor, float, float]:
-    """BCE + soft Dice for WMH (heavy imbalance) and, at half weight, for the intracranial mask."""
-    w, wt = logits[:, 0], targets["wmh_weight"]
-    i, it = logits[:, 1], targets["icv_weight"]
-    wmh = weighted_bce(w, targets["wmh"], wt) + soft_dice_loss(w, targets["wmh"], wt)
-    if float(it.sum()) > 0:
-        icv = weighted_bce(i, targets["icv"], it) + soft_dice_loss(i, targets["icv"], it)
-    else:
-        icv = logits.sum() * 0.0
-    return wmh + 0.5 * icv, float(wmh.detach()), float(icv.detach())
+) -> tuple[torch.Tensor, dict[str, float]]:
+    """BCE + soft Dice for WMH (heavy imbalance) and, at half weight each, for the intracranial
+    mask and (networks with a third output) the lateral ventricles. Returns the total and the
+    per-output parts."""
+    wmh = _term(logits[:, 0], targets["wmh"], targets["wmh_weight"])
+    icv = _term(logits[:, 1], targets["icv"], targets["icv_weight"])
+    total = wmh + 0.5 * icv
+    parts = {"wmh": float(wmh.detach()), "icv": float(icv.detach())}
+    if logits.shape[1] > 2:
+        vent = _term(logits[:, 2], targets["vent"], targets["vent_weight"])
+        total = total + 0.5 * vent
+        parts["vent"] = float(vent.detach())
+    return total, parts
 
 
 def learning_rate(step: int, base: float, total: int, warmup: int = 100) -> float:
@@ -175,8 +186,41 @@ def save_checkpoint(path: Path, state: dict[str, Any]) -> None:
         os.close(dir_fd)
 
 
-def build_net(widths: tuple[int, int, int, int]) -> WmhNet:
-    return WmhNet(in_channels=CHANNELS, n_out=2, widths=widths)
+def build_net(widths: tuple[int, int, int, int], n_out: int = len(OUTPUTS)) -> WmhNet:
+    return WmhNet(in_channels=CHANNELS, n_out=n_out, widths=widths)
+
+
+def checkpoint_outputs(state: dict[str, Any]) -> list[str]:
+    """Output channel names of a checkpoint (those from before ventricles have two)."""
+    return list(state.get("outputs", ["wmh", "intracranial"]))
+
+
+def warm_start(net: WmhNet, path: Path) -> dict[str, Any]:
+    """Copy the weights of the checkpoint at ``path`` into ``net`` where shapes allow.
+
+    Every layer of the same shape is copied; the output layer copies the channels both share
+    (WMH, intracranial), and a new channel keeps its fresh initialisation. Returns provenance.
+    """
+    state = torch.load(path, weights_only=False)
+    own = net.state_dict()
+    copied = 0
+    for key, value in state["model"].items():
+        if key in own and own[key].shape == value.shape:
+            own[key] = value.clone()
+            copied += 1
+        elif key in own and key.startswith("head.") and own[key].shape[1:] == value.shape[1:]:
+            n = min(own[key].shape[0], value.shape[0])
+            own[key][:n] = value[:n]
+            copied += 1
+    net.load_state_dict(own)
+    log.info("warm start from %s (step %d): %d tensors copied", path, state["step"], copied)
+    return {
+        "from": str(path),
+        "step": int(state["step"]),
+        "minutes": float(state["train_seconds"]) / 60.0,
+        "outputs": checkpoint_outputs(state),
+        "tensors_copied": copied,
+    }
 
 
 class StopFlag:
@@ -202,6 +246,15 @@ def case_weights(cases: list[CaseData], prefer: str, share: float) -> np.ndarray
     return np.asarray(w / w.sum())
 
 
+def sampling_weights(cases: list[CaseData], args: argparse.Namespace) -> np.ndarray:
+    """Case weights: preferred cases (``--prefer``) times hard negatives (lesion-free cases)."""
+    base = case_weights(cases, args.prefer, args.prefer_share)
+    w = hard_negative_weights(cases, args.lesion_free_factor)
+    if base is not None:
+        w = w * base
+    return np.asarray(w / w.sum())
+
+
 def _load_cases(files: list[Path], known: dict[str, CaseData]) -> list[CaseData]:
     for path in files:
         if path.stem not in known:
@@ -218,12 +271,17 @@ def train(args: argparse.Namespace) -> None:
     torch.manual_seed(args.seed)  # before the network is built: fixes its initial weights
     rng = np.random.default_rng(args.seed)
     net = build_net((widths[0], widths[1], widths[2], widths[3]))
-    opt = torch.optim.AdamW(net.parameters(), lr=args.lr, weight_decay=1e-4)
     step, train_s, case_names = 0, 0.0, []
     history: list[dict[str, Any]] = []
-    if ckpt_path.is_file() and not args.fresh:
+    origin: dict[str, Any] = {"warm_start": None}
+    resuming = ckpt_path.is_file() and not args.fresh
+    if args.warm_start and not resuming:
+        origin["warm_start"] = warm_start(net, args.warm_start)
+    opt = torch.optim.AdamW(net.parameters(), lr=args.lr, weight_decay=1e-4)
+    if resuming:
         state = torch.load(ckpt_path, weights_only=False)
-        net = build_net(tuple(state["widths"]))
+        outputs = checkpoint_outputs(state)
+        net = build_net(tuple(state["widths"]), n_out=len(outputs))
         net.load_state_dict(state["model"])
         opt = torch.optim.AdamW(net.parameters(), lr=args.lr, weight_decay=1e-4)
         opt.load_state_dict(state["optimizer"])
@@ -231,6 +289,7 @@ def train(args: argparse.Namespace) -> None:
         torch.set_rng_state(state["torch_rng"])
         step, train_s, case_names = state["step"], state["train_seconds"], state["cases"]
         history = list(state.get("history", []))
+        origin = dict(state.get("origin", {"warm_start": None}))
         if not history and step > 0:  # a checkpoint from before sessions were recorded
             history = [
                 {
@@ -288,6 +347,8 @@ def train(args: argparse.Namespace) -> None:
                 "cases": [c.name for c in cases],
                 "widths": list(net.widths),
                 "channels": CHANNELS,
+                "outputs": list(OUTPUTS[: net.n_out]),
+                "origin": origin,
                 "crop": args.crop,
                 "batch_size": args.batch_size,
                 "threads": args.threads,
@@ -300,7 +361,8 @@ def train(args: argparse.Namespace) -> None:
     net.train()
     deadline = time.monotonic() + args.minutes * 60.0
     last_ckpt = time.monotonic()
-    run_loss, run_w, run_i, run_n, t_log = 0.0, 0.0, 0.0, 0, time.monotonic()
+    run_loss, run_n, t_log = 0.0, 0, time.monotonic()
+    run_parts: dict[str, float] = {}
     while time.monotonic() < deadline and not stop.stop:
         if args.max_steps and step >= args.max_steps:
             break
@@ -314,40 +376,36 @@ def train(args: argparse.Namespace) -> None:
             batch_size=args.batch_size,
             crop=args.crop,
             channels=CHANNELS,
-            weights=case_weights(cases, args.prefer, args.prefer_share),
+            weights=sampling_weights(cases, args),
         )
         targets = {
-            "wmh": torch.from_numpy(b.wmh),
-            "wmh_weight": torch.from_numpy(b.wmh_weight),
-            "icv": torch.from_numpy(b.icv),
-            "icv_weight": torch.from_numpy(b.icv_weight),
+            name: torch.from_numpy(getattr(b, name))
+            for name in ("wmh", "wmh_weight", "icv", "icv_weight", "vent", "vent_weight")
         }
         opt.zero_grad(set_to_none=True)
-        loss, lw, li = segmentation_loss(net(torch.from_numpy(b.x)), targets)
+        loss, parts = segmentation_loss(net(torch.from_numpy(b.x)), targets)
         loss.backward()
         opt.step()
         step += 1
         train_s += time.monotonic() - t0
-        run_loss, run_w, run_i, run_n = (
-            run_loss + float(loss.detach()),
-            run_w + lw,
-            run_i + li,
-            run_n + 1,
-        )
+        run_loss, run_n = run_loss + float(loss.detach()), run_n + 1
+        for key, value in parts.items():
+            run_parts[key] = run_parts.get(key, 0.0) + value
         if step % args.log_every == 0:
-            rate = run_n * args.batch_size / max(1e-9, time.monotonic() - t_log)
+            rate = run_n * 60.0 / max(1e-9, time.monotonic() - t_log)
+            detail = ", ".join(f"{k} {v / run_n:.4f}" for k, v in run_parts.items())
             log.info(
-                "step %d loss %.4f (wmh %.4f, icv %.4f) lr %.2e %.1f crops/s %d cases %.1f min",
+                "step %d loss %.4f (%s) lr %.2e %.1f steps/min %d cases %.1f min",
                 step,
                 run_loss / run_n,
-                run_w / run_n,
-                run_i / run_n,
+                detail,
                 lr,
                 rate,
                 len(cases),
                 train_s / 60,
             )
-            run_loss, run_w, run_i, run_n, t_log = 0.0, 0.0, 0.0, 0, time.monotonic()
+            run_loss, run_n, t_log = 0.0, 0, time.monotonic()
+            run_parts = {}
         if args.rescan_every and step % args.rescan_every == 0:
             if args.bank_sources:
                 update_cache(args.bank_sources, args.cache)
@@ -416,7 +474,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--bank", type=Path, default=Path("work/bank"), help="phantom case folders")
     p.add_argument("--cases", type=Path, action="append", default=[], help="lab case folders")
     p.add_argument("--cache", type=Path, default=Path("work/cache"), help="model-grid arrays")
-    p.add_argument("--out", type=Path, default=Path("models/wmh-synth"), help="model folder")
+    p.add_argument("--out", type=Path, default=Path("models/flairwatch-wmh"), help="model folder")
     p.add_argument("--make-bank", metavar="SEEDS", help="build phantom cases, e.g. 1-200, and stop")
     p.add_argument("--bank-workers", type=int, default=1)
     p.add_argument(
@@ -429,6 +487,15 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--export", action="store_true", help="write model.onnx, manifest, model card")
     p.add_argument("--fresh", action="store_true", help="ignore an existing checkpoint")
+    p.add_argument(
+        "--warm-start",
+        type=Path,
+        metavar="CHECKPOINT",
+        help="start a new run from another run's weights (layers of matching shape)",
+    )
+    p.add_argument(
+        "--lesion-free-factor", type=float, default=2.0, help="sampling weight of lesion-free cases"
+    )
     p.add_argument("--widths", type=int, nargs=4, default=list(DEFAULT_WIDTHS))
     p.add_argument("--batch-size", type=int, default=12)
     p.add_argument("--crop", type=int, default=160, help="crop size in pixels (multiple of 8)")
@@ -449,7 +516,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--eval-cases", type=int, default=6, help="held-out phantoms to score")
     p.add_argument("--max-validation", type=int, default=12, help="validation cases to use")
     p.add_argument("--timing-slices", type=int, default=48, help="slices for the speed check")
-    p.add_argument("--version", default="0.1.0", help="model version written to the manifest")
+    p.add_argument("--version", default="0.2.0", help="model version written to the manifest")
     return p
 
 

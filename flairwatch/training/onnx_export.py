@@ -32,7 +32,7 @@ from flairwatch.training.network import WithSigmoid, WmhNet
 
 log = logging.getLogger("train_model")
 
-MODEL_NAME = "wmh-synth"
+MODEL_NAME = "flairwatch-wmh"
 ONNX_FILE = "model.onnx"
 MANIFEST_FILE = "model.yaml"
 CARD_FILE = "MODEL_CARD.md"
@@ -157,6 +157,7 @@ def write_manifest(
     channels: int,
     training_data: str,
     metrics_block: dict[str, Any],
+    outputs: Sequence[str] = ("wmh", "intracranial"),
 ) -> Path:
     raw = {
         "name": MODEL_NAME,
@@ -178,7 +179,7 @@ def write_manifest(
             "reference_percentile": norm.reference_percentile,
             "foreground_fraction": norm.foreground_fraction,
         },
-        "output": {"name": "probabilities", "channels": ["wmh", "intracranial"]},
+        "output": {"name": "probabilities", "channels": list(outputs)},
         "threshold": float(threshold),
         "training_data": training_data,
         "metrics": _clean(metrics_block),
@@ -506,7 +507,10 @@ def export_and_check(
     """Export ONNX, choose the threshold, write and verify the manifest, score held-out cases."""
     torch.set_num_threads(threads)
     state = torch.load(checkpoint, weights_only=False)
-    net = WmhNet(in_channels=int(state["channels"]), n_out=2, widths=tuple(state["widths"]))
+    outputs = list(state.get("outputs", ["wmh", "intracranial"]))
+    net = WmhNet(
+        in_channels=int(state["channels"]), n_out=len(outputs), widths=tuple(state["widths"])
+    )
     net.load_state_dict(state["model"])
     net.eval()
     onnx_path = out / ONNX_FILE
@@ -577,6 +581,7 @@ def export_and_check(
             channels=int(state["channels"]),
             training_data=training_data,
             metrics_block=block,
+            outputs=outputs,
         )
 
     manifest_path = manifest()
