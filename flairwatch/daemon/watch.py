@@ -10,10 +10,15 @@ worker processes only compute. The loop:
 3. record what workers report: done (after the result folder is durably in place), refused
    (bad input, files left in place or moved to quarantine), failed (retried with exponential
    back-off when transient, recorded for good otherwise);
-4. every few seconds: heartbeat row, watcher health check.
+4. every few seconds (:meth:`Daemon.supervise`): heartbeat row, watcher health check, a paused
+   dispatch resumed when disk space is back, and any running job that no live owner holds put
+   back in the queue.
 
-After ``kill -9`` at any moment a restart removes half-built result folders, puts jobs that were
-running back in the queue, and a finished folder the ledger missed is adopted, not recomputed.
+The daemon owns its jobs through the state folder's lock (:mod:`flairwatch.ledger.owners`), not
+through process ids. After ``kill -9`` at any moment a restart (:mod:`flairwatch.daemon.reconcile`)
+requeues the jobs that were running without counting them against their series, removes
+half-built result folders, repairs pointer files, and a finished folder the ledger missed is
+adopted (when its fingerprint matches), not recomputed.
 """
 
 from __future__ import annotations

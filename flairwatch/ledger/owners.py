@@ -67,6 +67,8 @@ def lock_is_free(state_dir: Path, lock: str) -> bool:
         fd = os.open(path, os.O_RDONLY)
     except FileNotFoundError:
         return True
+    except PermissionError:  # another user's run, unreadable to us: assume it lives
+        return False
     try:
         try:
             fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
@@ -80,7 +82,7 @@ def lock_is_free(state_dir: Path, lock: str) -> bool:
 def remove_dead_lock(state_dir: Path, lock: str) -> None:
     """Delete a per-run lock file whose owner is gone (never the daemon's own lock file)."""
     if lock.startswith(OWNERS_FOLDER + "/") and lock_is_free(state_dir, lock):
-        with contextlib.suppress(FileNotFoundError):
+        with contextlib.suppress(OSError):  # gone already, or not ours to remove
             (state_dir / lock).unlink()
 
 
