@@ -213,3 +213,42 @@ def test_a_missing_inbox_is_logged_once_per_change(
         daemon.intake.scan(1600.0)
     assert caplog.text.count("is missing") == 1
     assert caplog.text.count("is back") == 1
+
+
+def test_a_vanished_inbox_pauses_instead_of_refusing(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
+    from flairwatch.daemon.watch import Daemon
+    from tests.daemon_fixtures import copy_in, stage_series
+
+    inbox = tmp_path / "in"
+    for name in ("a", "b"):  # 2 x 12 files
+        copy_in(stage_series(tmp_path / "staging", name), inbox, name)
+    cfg = Config(inbox=inbox, results=tmp_path / "out", state=tmp_path / "state",
+                 settle_seconds=0.0)  # fmt: skip
+    away = tmp_path / "away"
+    with Ledger.open(tmp_path / "state") as led, caplog.at_level("INFO"):
+        daemon = Daemon(cfg, led, b"k" * 32)
+        daemon.intake.lost_grace_seconds = 60.0
+        daemon.intake.scan(1.0)
+        daemon.intake.scan(2.0)
+        assert [j.state for j in led.jobs_in(JobState.QUEUED)] == [JobState.QUEUED] * 2
+        inbox.rename(away)  # the share goes away: an empty mount point stays
+        inbox.mkdir()
+        daemon.intake.scan(3.0)
+        assert daemon.intake.inbox_away() and "vanished" in (daemon._pause_state() or "")
+        assert len(led.known_files()) == 24  # nothing recorded as gone, nothing refused
+        assert len(led.jobs_in(JobState.QUEUED)) == 2
+        inbox.rmdir()
+        away.rename(inbox)  # it comes back
+        daemon.intake.scan(4.0)
+        assert not daemon.intake.inbox_away() and daemon._pause_state() is None
+        inbox.rename(away)
+        inbox.mkdir()
+        daemon.intake.scan(10.0)
+        daemon.intake.scan(40.0)  # still within the grace time
+        assert len(led.known_files()) == 24
+        daemon.intake.scan(71.0)  # away for longer than the grace time: taken as removed
+        assert led.known_files() == {} and not daemon.intake.inbox_away()
+    assert caplog.text.count("vanished at once") == 2  # once per loss, not per rescan
+    assert "files are back" in caplog.text and "taken as removed" in caplog.text

@@ -11,6 +11,7 @@ import contextlib
 import logging
 import os
 import shutil
+import time
 from pathlib import Path
 
 from flairwatch.config import Config
@@ -49,6 +50,7 @@ class InboxFiles:
             except OSError as exc:
                 log.warning("could not move %s to quarantine: %s; left in place", src, exc)
         self.scanner.forget(moved)
+        self.ledger.record_scan([], moved, time.time())  # gone by our hand, not a lost inbox
         log.info("series %s: %d files moved to %s", row.series_key, len(moved), target)
 
     def delete(self, series_id: int) -> None:
@@ -59,3 +61,4 @@ class InboxFiles:
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(f.path)
         self.scanner.forget(f.path for f in files)
+        self.ledger.record_scan([], [f.path for f in files], time.time())

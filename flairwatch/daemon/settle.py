@@ -21,6 +21,10 @@ from flairwatch.records import Series
 
 log = logging.getLogger("flairwatch.daemon.watch")
 
+LOST_MIN_FILES = 10  # fewer files gone than this is never a vanished inbox
+LOST_GRACE_SECONDS = 900.0  # a vanished inbox that stays away this long is taken as removed
+LOST_RECHECK_SECONDS = 30.0
+
 
 def _unchanged(row: FileRow | None) -> FileRow | None:
     """A ledger row as a scan would produce it (a scan does not know revisions)."""
@@ -42,6 +46,8 @@ class Intake:
         self.next_scan = 0.0
         self.once_targets: set[tuple[str, str]] = set()
         self.inbox_missing = False  # logged once when it goes, once when it comes back
+        self.lost_since: float | None = None  # when most inbox files vanished at once
+        self.lost_grace_seconds = LOST_GRACE_SECONDS
 
     def scan(self, now: float) -> None:
         try:
@@ -57,6 +63,9 @@ class Intake:
             log.warning("inbox %s is back", self.inbox)
             self.inbox_missing = False
         known = self.ledger.known_files()
+        if self._inbox_lost(known, scan, now):
+            self.next_scan = now + min(self.cfg.rescan_seconds, LOST_RECHECK_SECONDS)
+            return
         changed = [r for r in file_rows(scan) if _unchanged(known.get(r.path)) != r]
         for row in changed:
             if row.reason and row.path not in known:
@@ -75,6 +84,42 @@ class Intake:
         if not self.once_targets and self.once:
             self.once_targets = set(scan.series)
         self.next_scan = deadline
+
+    def inbox_away(self) -> bool:
+        """The inbox is missing or most of its files vanished: nothing may be dispatched."""
+        return self.inbox_missing or self.lost_since is not None
+
+    def _inbox_lost(self, known: dict[str, FileRow], scan: Scan, now: float) -> bool:
+        """Whether this scan looks like a vanished share rather than files really removed.
+
+        Lost: at least half of the files the ledger knows are gone at once, among them at least
+        half of the files of series still waiting for a result. Such a scan is not recorded
+        (no file marked gone, no series refused) and dispatch pauses, until the files come back
+        or stay away for ``lost_grace_seconds``; then the loss is accepted as real.
+        """
+        gone = {p for p in known if p not in scan.records}
+        pending = self.ledger.pending_files() if gone else set()
+        lost = (
+            bool(pending)
+            and len(gone) >= max(LOST_MIN_FILES, len(known) / 2)
+            and len(gone & pending) >= len(pending) / 2
+        )
+        if not lost:
+            if self.lost_since is not None:
+                log.warning("inbox %s: its files are back; dispatch resumes", self.inbox)
+                self.lost_since = None
+            return False
+        if self.lost_since is None:
+            self.lost_since = now
+            log.error("inbox %s: %d of %d files vanished at once (an unmounted share, a changed "
+                      "permission?); dispatch paused, queued series kept; looking again",
+                      self.inbox, len(gone), len(known))  # fmt: skip
+        if now - self.lost_since < self.lost_grace_seconds:
+            return True
+        log.warning("inbox %s: the files stayed away %.0f min; taken as removed", self.inbox,
+                    (now - self.lost_since) / 60)  # fmt: skip
+        self.lost_since = None
+        return False
 
     def _step(self, key: tuple[str, str], series: Series, now: float) -> float | None:
         """Move one series a step; returns when it may be settled, if it is settling."""

@@ -81,10 +81,10 @@ def problems(
         found.append("the daemon has never run on this ledger")
     elif daemon["state"] == "stopped":
         found.append(f"the daemon stopped {now - daemon['beat']:.0f} s ago")
-    elif daemon["state"] == "paused" and now - daemon["beat"] <= stale_s:
+    elif daemon["state"].startswith("paused") and now - daemon["beat"] <= stale_s:
+        why = daemon["state"].partition(":")[2].strip() or "see its log"
         found.append(
-            "the daemon paused dispatch: no space left on the results disk; free some space "
-            "(queued series wait and none counts as failed)"
+            f"the daemon paused dispatch: {why} (queued series wait and none counts as failed)"
         )
     elif now - daemon["beat"] > stale_s:
         found.append(

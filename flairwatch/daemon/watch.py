@@ -182,7 +182,7 @@ class Daemon:
                 self.intake.next_scan = min(self.intake.next_scan, now + soon)
             if not draining and now >= self.intake.next_scan:
                 self.intake.scan(now)
-            if not draining:
+            if not draining and not self.intake.inbox_away():
                 self.jobs.dispatch(pool, self.intake.last_scan, now)
             for _slot, report in pool.poll(max(0.0, min(0.25, self.intake.next_scan - now))):
                 if report.kind == "init_failed":  # the pool retries it with back-off
@@ -193,7 +193,7 @@ class Daemon:
                     soon = now + self.tuning.event_delay_seconds
                     self.intake.next_scan = min(self.intake.next_scan, soon)
             now = self.clock()
-            state = "stopping" if draining else "paused" if self.jobs.paused else "running"
+            state = "stopping" if draining else self._pause_state() or "running"
             if now - last_beat >= self.tuning.heartbeat_seconds or state != last_state:
                 self.ledger.beat(os.getpid(), state, now, inbox=str(self.inbox), started=started)
                 last_beat, last_state = now, state
@@ -202,6 +202,16 @@ class Daemon:
                 last_check = now
             if self.once and not draining and self.once_done(pool, now):
                 return EXIT_FAILED if self.jobs.unfinished or self._retry_pending() else EXIT_OK
+
+    def _pause_state(self) -> str | None:
+        """The heartbeat state while dispatch waits for a person (status shows the reason)."""
+        if self.jobs.paused is not None:
+            return "paused: no space left on the results disk; free some space"
+        if self.intake.inbox_missing:
+            return "paused: the inbox folder is missing (unmounted share?); check the inbox"
+        if self.intake.lost_since is not None:
+            return "paused: most inbox files vanished (unmounted share?); check the inbox"
+        return None
 
     def supervise(self, pool: WorkerPool, observer: InboxObserver | None, now: float) -> None:
         """The periodic check: the watcher lives, and every running job has a live owner.

@@ -80,3 +80,15 @@ class FileTables(LedgerCore):
             (series_id,),
         )
         return [FileRow(*r) for r in rows]
+
+    def pending_files(self) -> set[str]:
+        """Present files of series still waiting for a result (settling, queued or running)."""
+        rows = self.query(
+            """SELECT f.path FROM files f
+               JOIN series s ON s.study_uid = f.study_uid AND s.series_uid = f.series_uid
+               JOIN jobs j ON j.id = (SELECT MAX(k.id) FROM jobs k WHERE k.series_id = s.id)
+               WHERE f.gone = 0 AND j.state IN ('settling', 'queued', 'running')
+                 AND s.revision = (SELECT MAX(t.revision) FROM series t
+                                   WHERE t.study_uid = s.study_uid AND t.series_uid = s.series_uid)"""
+        )
+        return {r[0] for r in rows}
