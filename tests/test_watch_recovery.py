@@ -252,3 +252,45 @@ def test_a_vanished_inbox_pauses_instead_of_refusing(
         assert led.known_files() == {} and not daemon.intake.inbox_away()
     assert caplog.text.count("vanished at once") == 2  # once per loss, not per rescan
     assert "files are back" in caplog.text and "taken as removed" in caplog.text
+
+
+def test_scanner_retries_unreadable_files_and_notices_chmod(tmp_path: Path) -> None:
+    import os
+    import stat as stat_mod
+
+    from flairwatch.intake.discover import read_record
+    from flairwatch.records import FileRecord
+    from tests.daemon_fixtures import copy_in, stage_series
+
+    copy_in(stage_series(tmp_path / "staging", "a"), tmp_path / "in", "a")
+    locked, flaky = sorted((tmp_path / "in" / "a").iterdir())[:2]
+    locked.chmod(0)  # what a sender's umask or a wrong owner leaves
+    failures = {"io": 1}
+    reads: list[str] = []
+
+    def reader(path: Path) -> FileRecord:
+        # the tests run as root, whom the kernel lets read a mode-000 file: answer as it
+        # answers any other user (open(2): EACCES); and one transient EIO on another file
+        reads.append(path.name)
+        if not os.stat(path).st_mode & stat_mod.S_IRUSR:
+            return FileRecord(path, 0, 0, reason="cannot read: Permission denied")
+        if path == flaky and failures["io"]:
+            failures["io"] -= 1
+            return FileRecord(path, 0, 0, reason="cannot read: Input/output error")
+        return read_record(path)
+
+    scanner = InboxScanner(tmp_path / "in", read=reader)
+    first = scanner.scan()
+    (series,) = first.series.values()
+    assert len(series.files) == 10 and first.records[str(locked)].reason
+    assert first.records[str(flaky)].reason == "cannot read: Input/output error"
+    second = scanner.scan()  # nothing changed on disk, but unreadable files are tried again
+    assert sorted(reads[len(first.records) :]) == sorted([locked.name, flaky.name])
+    assert second.records[str(flaky)].reason is None  # the EIO has passed
+    assert second.records[str(locked)].reason  # the permission is still wrong
+    locked.chmod(0o644)  # fixed by a person: the ctime moves, the size and mtime do not
+    third = scanner.scan()
+    assert third.read == 1 and third.records[str(locked)].reason is None
+    (series,) = third.series.values()
+    assert len(series.files) == 12
+    assert scanner.scan().read == 0  # everything readable and unchanged: no header read at all

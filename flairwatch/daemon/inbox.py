@@ -9,7 +9,10 @@ DICOM has no "series complete" marker, so a series is ready when (RELIABILITY.md
 - every file reads whole: left to :func:`flairwatch.intake.load.load_series`, which rejects cut files.
 
 A scan re-reads a header only when a file's size or mtime changed, so a rescan of a large inbox
-costs one ``stat`` per file. Watchdog events only make the next scan come sooner.
+costs one ``stat`` per file. Two exceptions keep a passing problem from sticking: a file that could
+not be read at all (a permission, EIO, ESTALE) is tried again at every scan, and an unusable
+file whose inode changed (``chmod``, ``chown``: the ctime moves, the mtime does not) is read
+again. Watchdog events only make the next scan come sooner.
 """
 
 from __future__ import annotations
@@ -60,6 +63,7 @@ class InboxScanner:
         self._read = read
         self._stat = stat
         self._cache: dict[str, FileRecord] = {}
+        self._ctimes: dict[str, int] = {}
 
     def forget(self, paths: Iterable[str]) -> None:
         for p in paths:
@@ -67,6 +71,7 @@ class InboxScanner:
 
     def scan(self) -> Scan:
         found: dict[str, FileRecord] = {}
+        ctimes: dict[str, int] = {}
         read = 0
         for path in self._candidates([self.root]):
             key = str(path)
@@ -75,14 +80,28 @@ class InboxScanner:
             except OSError:
                 continue  # vanished since it was listed
             cached = self._cache.get(key)
-            if cached is None or (cached.size, cached.mtime_ns) != (st.st_size, st.st_mtime_ns):
+            if cached is None or _stale(cached, st, self._ctimes.get(key)):
                 cached = self._read(path)
                 read += 1
             found[key] = cached
+            ctimes[key] = st.st_ctime_ns
         gone = sorted(set(self._cache) - set(found))
-        self._cache = found
+        self._cache, self._ctimes = found, ctimes
         groups, unusable = group_series(found.values())
         return Scan(found, {s.key: s for s in groups}, unusable, read, gone)
+
+
+# the reason discover gives a file it could not open or read (a transient state, often)
+UNREADABLE_PREFIX = "cannot read"
+
+
+def _stale(cached: FileRecord, st: os.stat_result, ctime_ns: int | None) -> bool:
+    """Whether a file's cached header must be read again (pure)."""
+    if (cached.size, cached.mtime_ns) != (st.st_size, st.st_mtime_ns):
+        return True
+    if cached.reason is None:
+        return False
+    return cached.reason.startswith(UNREADABLE_PREFIX) or ctime_ns != st.st_ctime_ns
 
 
 def file_rows(scan: Scan) -> list[FileRow]:
