@@ -10,7 +10,6 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
-import time
 
 import pytest
 
@@ -71,24 +70,6 @@ def test_a_failing_probe_would_see_numpy() -> None:
     """The probe can fail: a command that runs the engine does import the heavy libraries."""
     modules = modules_after(["models"])
     assert "numpy" in modules or "yaml" in modules
-
-
-def _best_of(command: list[str], runs: int = 7) -> float:
-    best = float("inf")
-    for _ in range(runs):
-        start = time.perf_counter()
-        subprocess.run(command, check=True, capture_output=True)
-        best = min(best, time.perf_counter() - start)
-    return best
-
-
-def test_help_start_up_is_close_to_a_bare_interpreter() -> None:
-    """Issue 11's target: ``--help`` within 0.1 s of ``python -c pass`` (best of 7 each; the
-    best, because other work on a shared machine only adds time). scripts/bench_startup.py
-    prints the figures."""
-    bare = _best_of([sys.executable, "-c", "pass"])
-    top = _best_of([sys.executable, "-c", "from flairwatch.cli import main; main(['--help'])"])
-    assert top - bare <= 0.1
 
 
 @pytest.mark.parametrize("form", [["-m", "flairwatch"], ["-m", "flairwatch.cli"]])
