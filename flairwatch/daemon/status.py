@@ -22,7 +22,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-from flairwatch.config import DEFAULT_OVERDUE_FACTOR, DEFAULT_OVERDUE_SECONDS
 from flairwatch.ledger.store import JobState, Ledger
 
 DEFAULT_STALE_SECONDS = 60.0  # heartbeat older than this: the daemon is not running
@@ -116,9 +115,16 @@ def gather(
     stale_s: float = DEFAULT_STALE_SECONDS,
     stuck_s: float = DEFAULT_STUCK_SECONDS,
     failure_run: int = DEFAULT_FAILURE_RUN,
-    overdue_s: float = DEFAULT_OVERDUE_SECONDS,
-    overdue_factor: float = DEFAULT_OVERDUE_FACTOR,
+    overdue_s: float | None = None,
+    overdue_factor: float | None = None,
 ) -> Report:
+    """Everything ``status`` reports; ``overdue_*`` default to the config's defaults."""
+    if overdue_s is None or overdue_factor is None:
+        # here, not at module level: 'status --help' must not load the config reader (YAML)
+        from flairwatch.config import DEFAULT_OVERDUE_FACTOR, DEFAULT_OVERDUE_SECONDS
+
+        overdue_s = DEFAULT_OVERDUE_SECONDS if overdue_s is None else overdue_s
+        overdue_factor = DEFAULT_OVERDUE_FACTOR if overdue_factor is None else overdue_factor
     counts = ledger.state_counts()
     oldest = ledger.oldest_waiting(now)
     oldest_wait = None if oldest is None else max(0.0, now - oldest)
