@@ -21,206 +21,44 @@ from __future__ import annotations
 
 import argparse
 import logging
-import math
-import os
 import signal
 import time
-import zlib
 from pathlib import Path
 from types import FrameType
 from typing import Any
 
 import numpy as np
 import torch
-import torch.nn.functional as F
 
-from flairwatch.engine.manifest import GridSpec, Normalisation
-from flairwatch.training.data import (
-    CaseData,
-    cache_case,
-    case_seed,
-    find_cases,
-    load_cached,
+from flairwatch.training.cache import (
+    GRID,
+    NORM,
+    cache_from_generator,
+    cached_training_files,
+    cached_validation_files,
+    make_bank,
+    parse_seeds,
+    source_of,
+    update_cache,
 )
-from flairwatch.training.network import DEFAULT_WIDTHS, WmhNet, count_parameters
+from flairwatch.training.checkpoint import (
+    CHANNELS,
+    OUTPUTS,
+    build_net,
+    checkpoint_outputs,
+    save_checkpoint,
+    warm_start,
+)
+from flairwatch.training.data import CaseData, load_cached
+from flairwatch.training.losses import learning_rate, segmentation_loss
+from flairwatch.training.network import DEFAULT_WIDTHS, count_parameters
 from flairwatch.training.onnx_export import export_and_check
 from flairwatch.training.sampling import hard_negative_weights, sample_batch
 
 log = logging.getLogger("train_model")
 
-GRID = GridSpec(spacing_mm=(1.0, 1.0), shape=(224, 224), through_plane="keep")
-NORM = Normalisation()
-CHANNELS = 3
 CHECKPOINT = "training-checkpoint.pt"
-OUTPUTS = ("wmh", "intracranial", "ventricles")  # output channels of a new network, in order
-
-
-def held_out_seeds() -> frozenset[int]:
-    """Seeds the phantom generator keeps for evaluation (empty when the generator is absent)."""
-    try:
-        from flairwatch.phantom.bank import HELD_OUT_SEEDS
-    except ImportError:
-        return frozenset()
-    return frozenset(int(s) for s in HELD_OUT_SEEDS)
-
-
-def is_validation(name: str, seed: int | None) -> bool:
-    """About one case in ten goes to validation: seed ending in 0, else a hash of the name."""
-    if seed is not None:
-        return seed % 10 == 0
-    return zlib.crc32(name.encode("utf-8")) % 10 == 0
-
-
-# ------------------------------------------------------------------------------------ data cache
-
-
-def update_cache(sources: list[tuple[str, Path]], cache: Path) -> int:
-    """Convert every complete case folder not yet cached; returns how many were added.
-
-    ``sources`` are (tag, folder of case folders); a cached file is ``<tag>-<case>.npz``.
-    """
-    cache.mkdir(parents=True, exist_ok=True)
-    forbidden = held_out_seeds()
-    added = 0
-    for tag, root in sources:
-        for case_dir in find_cases(root):
-            if tag == "bank" and not (case_dir / "case.json").is_file():
-                continue  # a phantom folder still being written
-            seed = case_seed(case_dir)
-            prefix = "val-" if is_validation(case_dir.name, seed) else ""
-            out = cache / f"{prefix}{tag}-{case_dir.name}.npz"
-            if out.exists():
-                continue
-            if seed is not None and seed in forbidden:
-                log.warning("skipping %s: its seed is held out for evaluation", case_dir)
-                continue
-            start = time.perf_counter()
-            try:
-                cache_case(case_dir, out, GRID, NORM)
-            except (ValueError, OSError, RuntimeError) as exc:
-                log.warning("skipping %s: %s", case_dir, exc)
-                continue
-            added += 1
-            log.info("cached %s (%.1f s)", out.name, time.perf_counter() - start)
-    return added
-
-
-def _complete(paths: list[Path]) -> list[Path]:
-    """Cached files that are fully written (a ``.part.npz`` is still being written)."""
-    return sorted(p for p in paths if not p.name.endswith(".part.npz"))
-
-
-def cached_training_files(cache: Path) -> list[Path]:
-    return _complete([p for p in cache.glob("*.npz") if not p.name.startswith("val-")])
-
-
-def cached_validation_files(cache: Path) -> list[Path]:
-    return _complete(list(cache.glob("val-*.npz")))
-
-
-# ---------------------------------------------------------------------------------------- losses
-
-
-def soft_dice_loss(
-    logits: torch.Tensor, target: torch.Tensor, weight: torch.Tensor
-) -> torch.Tensor:
-    """1 - soft Dice over the whole batch (crops without foreground do not make it undefined)."""
-    p = torch.sigmoid(logits) * weight
-    t = target * weight
-    inter = (p * t).sum()
-    return 1.0 - (2.0 * inter + 1.0) / (p.sum() + t.sum() + 1.0)
-
-
-def weighted_bce(logits: torch.Tensor, target: torch.Tensor, weight: torch.Tensor) -> torch.Tensor:
-    bce = F.binary_cross_entropy_with_logits(logits, target, reduction="none")
-    return (bce * weight).sum() / weight.sum().clamp(min=1.0)
-
-
-def _term(logits: torch.Tensor, target: torch.Tensor, weight: torch.Tensor) -> torch.Tensor:
-    """BCE + soft Dice where ``weight`` > 0; zero (still in the graph) when nothing is labelled."""
-    if float(weight.sum()) > 0:
-        return weighted_bce(logits, target, weight) + soft_dice_loss(logits, target, weight)
-    return logits.sum() * 0.0
-
-
-def segmentation_loss(
-    logits: torch.Tensor, targets: dict[str, torch.Tensor]
-) -> tuple[torch.Tensor, dict[str, float]]:
-    """BCE + soft Dice for WMH (heavy imbalance) and, at half weight each, for the intracranial
-    mask and (networks with a third output) the lateral ventricles. Returns the total and the
-    per-output parts."""
-    wmh = _term(logits[:, 0], targets["wmh"], targets["wmh_weight"])
-    icv = _term(logits[:, 1], targets["icv"], targets["icv_weight"])
-    total = wmh + 0.5 * icv
-    parts = {"wmh": float(wmh.detach()), "icv": float(icv.detach())}
-    if logits.shape[1] > 2:
-        vent = _term(logits[:, 2], targets["vent"], targets["vent_weight"])
-        total = total + 0.5 * vent
-        parts["vent"] = float(vent.detach())
-    return total, parts
-
-
-def learning_rate(step: int, base: float, total: int, warmup: int = 100) -> float:
-    """Linear warm-up, then cosine decay to 5 % of ``base`` at ``total`` steps (flat after)."""
-    if step < warmup:
-        return base * (step + 1) / warmup
-    t = min(1.0, (step - warmup) / max(1, total - warmup))
-    return base * (0.05 + 0.95 * 0.5 * (1.0 + math.cos(math.pi * t)))
-
-
-# ------------------------------------------------------------------------------------ checkpoint
-
-
-def save_checkpoint(path: Path, state: dict[str, Any]) -> None:
-    """Write the checkpoint beside its final place, flush it to disk, then rename it into place."""
-    tmp = path.with_name(path.name + ".tmp")
-    with open(tmp, "wb") as fh:
-        torch.save(state, fh)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
-    dir_fd = os.open(path.parent, os.O_RDONLY)
-    try:
-        os.fsync(dir_fd)
-    finally:
-        os.close(dir_fd)
-
-
-def build_net(widths: tuple[int, int, int, int], n_out: int = len(OUTPUTS)) -> WmhNet:
-    return WmhNet(in_channels=CHANNELS, n_out=n_out, widths=widths)
-
-
-def checkpoint_outputs(state: dict[str, Any]) -> list[str]:
-    """Output channel names of a checkpoint (those from before ventricles have two)."""
-    return list(state.get("outputs", ["wmh", "intracranial"]))
-
-
-def warm_start(net: WmhNet, path: Path) -> dict[str, Any]:
-    """Copy the weights of the checkpoint at ``path`` into ``net`` where shapes allow.
-
-    Every layer of the same shape is copied; the output layer copies the channels both share
-    (WMH, intracranial), and a new channel keeps its fresh initialisation. Returns provenance.
-    """
-    state = torch.load(path, weights_only=False)
-    own = net.state_dict()
-    copied = 0
-    for key, value in state["model"].items():
-        if key in own and own[key].shape == value.shape:
-            own[key] = value.clone()
-            copied += 1
-        elif key in own and key.startswith("head.") and own[key].shape[1:] == value.shape[1:]:
-            n = min(own[key].shape[0], value.shape[0])
-            own[key][:n] = value[:n]
-            copied += 1
-    net.load_state_dict(own)
-    log.info("warm start from %s (step %d): %d tensors copied", path, state["step"], copied)
-    return {
-        "from": str(path),
-        "step": int(state["step"]),
-        "minutes": float(state["train_seconds"]) / 60.0,
-        "outputs": checkpoint_outputs(state),
-        "tensors_copied": copied,
-    }
+__all__ = ["build_net", "main"]  # build_net: tests rebuild the network of a checkpoint
 
 
 class StopFlag:
@@ -419,56 +257,6 @@ def train(args: argparse.Namespace) -> None:
     checkpoint()
 
 
-# ------------------------------------------------------------------------------------------- CLI
-
-
-def _source(path: Path) -> str:
-    with np.load(path) as z:
-        return str(z["source"]) if "source" in z.files else ""
-
-
-def parse_seeds(text: str) -> list[int]:
-    """``"1-200"`` or ``"1,5,9"`` or a mix -> sorted seeds."""
-    seeds: set[int] = set()
-    for part in text.split(","):
-        if "-" in part:
-            lo, hi = part.split("-", 1)
-            seeds.update(range(int(lo), int(hi) + 1))
-        elif part.strip():
-            seeds.add(int(part))
-    return sorted(seeds)
-
-
-def cache_from_generator(cache: Path, seeds: list[int]) -> None:
-    """Generate phantoms in memory and cache their model-grid arrays (no case folders written)."""
-    from flairwatch.training.data import phantom_arrays, save_arrays
-
-    cache.mkdir(parents=True, exist_ok=True)
-    forbidden = held_out_seeds()
-    for seed in seeds:
-        if seed in forbidden or seed >= 100000:
-            log.warning("seed %d is held out or out of range; skipped", seed)
-            continue
-        name = f"gen-case-{seed:05d}"
-        out = cache / (("val-" if is_validation(name, seed) else "") + name + ".npz")
-        if out.exists():
-            continue
-        start = time.perf_counter()
-        arrays, version = phantom_arrays(seed, GRID, NORM)
-        save_arrays(out, arrays, seed=seed, source=f"generator {version}")
-        log.info("cached %s (%.1f s)", out.name, time.perf_counter() - start)
-
-
-def make_bank(out: Path, seeds: list[int], workers: int) -> None:
-    from flairwatch.phantom.bank import HELD_OUT_SEEDS
-    from flairwatch.phantom.bank import make_bank as build
-
-    keep = [s for s in seeds if s not in set(HELD_OUT_SEEDS) and s < 100000]
-    if len(keep) < len(seeds):
-        log.warning("left out %d held-out or out-of-range seeds", len(seeds) - len(keep))
-    build(out, keep, workers=workers, progress=True)
-
-
 def build_parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawTextHelpFormatter)
     p.add_argument("--bank", type=Path, default=Path("work/bank"), help="phantom case folders")
@@ -514,6 +302,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--log-every", type=int, default=20)
     p.add_argument("--rescan-every", type=int, default=200, help="steps between cache updates")
     p.add_argument("--eval-cases", type=int, default=6, help="held-out phantoms to score")
+    p.add_argument(
+        "--altered-cases",
+        type=int,
+        default=5,
+        help="held-out phantoms to score with one acquisition change each (see heldout.py)",
+    )
     p.add_argument("--max-validation", type=int, default=12, help="validation cases to use")
     p.add_argument("--timing-slices", type=int, default=48, help="slices for the speed check")
     p.add_argument("--version", default="0.2.0", help="model version written to the manifest")
@@ -544,7 +338,7 @@ def main(argv: list[str] | None = None) -> int:
         train(args)
     if args.export:
         validation = cached_validation_files(args.cache)
-        preferred = [p for p in validation if args.prefer and args.prefer in _source(p)]
+        preferred = [p for p in validation if args.prefer and args.prefer in source_of(p)]
         # the threshold is best chosen on cases like those the final phase favoured
         validation = preferred if len(preferred) >= 3 else validation
         validation = validation[: args.max_validation]  # each one costs ONNX time on 2 cores
@@ -559,6 +353,8 @@ def main(argv: list[str] | None = None) -> int:
             threads=args.threads,
             cache=args.cache,
             timing_slices=args.timing_slices,
+            altered_cases=args.altered_cases,
+            lr=args.lr,
         )
     return 0
 
