@@ -181,3 +181,25 @@ def test_identity_sized_antialias_filter_is_skipped_only_when_scipy_would_not_fi
     assert convert._antialias_sigma(1.11) == 0.0  # 0.9 mm -> 1.0 mm: sigma 0.055, one tap
     assert convert._antialias_sigma(1.5) == pytest.approx(0.25)
     assert convert._antialias_sigma(0.8) == 0.0  # enlarging: no filter
+
+
+@pytest.mark.parametrize("level", [0.5, 0.3, 0.0])
+def test_mask_resampling_equals_thresholding_the_resampled_map(level: float) -> None:
+    # Oracle: the full linear resampling (itself bit-identical to scipy's affine_transform above),
+    # then the threshold; values exactly at the level, a field of view that cuts the head off,
+    # and threads included.
+    from scipy import ndimage
+
+    rng = np.random.default_rng(11)
+    affine = np.diag([0.9, 0.85, 3.0, 1.0])
+    vol = Volume(np.zeros((70, 76, 9), dtype=np.float32), affine)
+    gmap = convert.plan(vol, GridSpec((1.0, 1.0), (56, 60)))
+    model = ndimage.gaussian_filter(rng.random((9, 60, 56)), (0, 3, 3))
+    model = ((model - model.min()) / np.ptp(model)).astype(np.float32)
+    model[:, 20:30, 20:30] = np.float32(level)
+    model[2] = 1.0  # a slice wholly above
+    expected = convert.resample_to_series(model, gmap) >= level
+    for threads in (1, 2):
+        got = convert.resample_mask_to_series(model, gmap, level, threads=threads)
+        assert got.dtype == bool
+        np.testing.assert_array_equal(got, expected)

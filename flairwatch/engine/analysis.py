@@ -172,18 +172,23 @@ def analyse(
     with timed(timings, "infer"):
         probs = segmenter.predict(x)
 
-    def back(name: str) -> np.ndarray:
-        return convert.resample_to_series(
-            probs[:, channels.index(name)], gmap, threads=segmenter.threads
-        )
+    def channel(name: str) -> np.ndarray:
+        return probs[:, channels.index(name)]
 
+    threads = segmenter.threads
     with timed(timings, "to_series_grid"):
-        wmh = back("wmh")
+        wmh = convert.resample_to_series(channel("wmh"), gmap, threads=threads)
         icv = vent = None
         if "intracranial" in channels:
-            icv = largest_component_filled(back("intracranial") >= MASK_LEVEL)
+            icv = largest_component_filled(
+                convert.resample_mask_to_series(
+                    channel("intracranial"), gmap, MASK_LEVEL, threads=threads
+                )
+            )
         if "ventricles" in channels:
-            vent = back("ventricles") >= MASK_LEVEL
+            vent = convert.resample_mask_to_series(
+                channel("ventricles"), gmap, MASK_LEVEL, threads=threads
+            )
             if icv is not None:
                 vent &= icv != 0
             vent = vent.astype(np.uint8)
