@@ -103,3 +103,27 @@ def test_export_round_trip(cache: Path, tmp_path: Path) -> None:
     np.testing.assert_allclose(got, expected, atol=1e-4)
     card = (out / "MODEL_CARD.md").read_text(encoding="utf-8")
     assert "Research use only" in card and "synthetic" in card
+
+
+def test_two_output_checkpoint_resumes_and_warm_starts(cache: Path, tmp_path: Path) -> None:
+    """A checkpoint from before the ventricle output (no ``outputs`` key) still resumes, with
+    two outputs, and a new three-output run can start from its weights."""
+    train_model, _ = _scripts()
+    old = tmp_path / "old"
+    _run(train_model, cache, old, "--minutes", "5", "--max-steps", "1")
+    state = torch.load(old / "training-checkpoint.pt", weights_only=False)
+    two = train_model.build_net((4, 8, 8, 16), n_out=2)
+    state["model"] = two.state_dict()
+    del state["outputs"], state["origin"]  # the format written before the ventricle output
+    torch.save(state, old / "training-checkpoint.pt")
+    _run(train_model, cache, old, "--minutes", "5", "--max-steps", "2")
+    resumed = torch.load(old / "training-checkpoint.pt", weights_only=False)
+    assert resumed["step"] == 2 and resumed["outputs"] == ["wmh", "intracranial"]
+    assert resumed["model"]["head.weight"].shape[0] == 2
+    new = tmp_path / "new"
+    warm = ["--warm-start", str(old / "training-checkpoint.pt"), "--max-steps", "1"]
+    _run(train_model, cache, new, "--minutes", "5", *warm)
+    started = torch.load(new / "training-checkpoint.pt", weights_only=False)
+    assert started["outputs"] == ["wmh", "intracranial", "ventricles"]
+    assert started["origin"]["warm_start"]["step"] == 2
+    assert started["model"]["head.weight"].shape[0] == 3

@@ -34,7 +34,7 @@ RECALL_MIN_MM3 = 30.0  # lesion recall counts reference lesions of at least this
 # One acquisition change per variant, each beyond what sample_params draws.
 ALTERATIONS: tuple[str, ...] = (
     "timing",  # TE 1.5x, TI 10 % short: darker lesions, brighter fluid
-    "thick-slices",  # 6 mm slices with a 1.5 mm gap
+    "thick-slices",  # 6 mm slices with a 1.5 mm gap (2D stacks; 3D ones get "timing")
     "low-snr",  # noise 3x
     "strong-bias",  # bias field SD 0.7
     "look-alikes",  # cortex patches, inflow and ventricle lining all at full strength
@@ -146,6 +146,8 @@ def held_out_check(
         params = sample_params(seed)
         change = alterations[i % len(alterations)] if alterations else "none"
         if alterations:
+            if change == "thick-slices" and params.acquisition.kind != "2d_axial":
+                change = "timing"  # what altered_params does to a 3D stack
             params = altered_params(params, change)
         case = generate(params)
         start = time.perf_counter()

@@ -2,14 +2,18 @@
 
 Typical use, from the repository root::
 
-    python scripts/train_model.py --make-bank 1-200          # phantom case folders, once
+    python scripts/train_model.py --from-generator 1-240     # phantoms made in memory, cached once
+    python scripts/train_model.py --make-bank 1-200          # or phantom case folders on disk
     python scripts/train_model.py --minutes 45               # train (resumes from the checkpoint)
-    python scripts/train_model.py --export                   # ONNX + manifest + held-out check
+    python scripts/train_model.py --export --export-dir flairwatch/models/flairwatch-wmh
     python scripts/train_model.py --cases /data/lab_cases --minutes 30   # add the lab's own cases
 
-Case folders (phantom bank, and any ``--cases DIR``) are converted once with flairwatch's own
-converter into model-grid arrays under ``--cache``. Training draws augmented crops with
-lesion-aware sampling and writes a checkpoint (model, optimiser, step, random state) every few
+The default output folder is ``models/flairwatch-wmh`` (the checkpoint of the ``flairwatch-wmh``
+model: WMH, intracranial and lateral-ventricle outputs). ``--warm-start CHECKPOINT`` starts a new
+run from another run's weights. Case folders (phantom bank, and any ``--cases DIR``) are
+converted once with flairwatch's own converter into model-grid arrays under ``--cache``.
+Training draws randomised crops (:mod:`flairwatch.training.sampling`) with lesion-aware and
+hard-negative sampling and writes a checkpoint (model, optimiser, step, random state) every few
 minutes to ``<out>/training-checkpoint.pt``, replaced atomically, so a stopped run resumes
 exactly where it was (given the same cached cases). Phantom cases whose seed ends in 0 form the
 validation split used to choose the threshold; the generator's held-out seeds are never trained on.
@@ -274,6 +278,12 @@ def build_parser() -> argparse.ArgumentParser:
         "--total-steps", type=int, default=3000, help="length of the learning-rate decay"
     )
     p.add_argument("--export", action="store_true", help="write model.onnx, manifest, model card")
+    p.add_argument(
+        "--export-dir",
+        type=Path,
+        help="where --export writes them (default: the --out folder); the package ships "
+        "flairwatch/models/<name>",
+    )
     p.add_argument("--fresh", action="store_true", help="ignore an existing checkpoint")
     p.add_argument(
         "--warm-start",
@@ -342,9 +352,11 @@ def main(argv: list[str] | None = None) -> int:
         # the threshold is best chosen on cases like those the final phase favoured
         validation = preferred if len(preferred) >= 3 else validation
         validation = validation[: args.max_validation]  # each one costs ONNX time on 2 cores
+        export_dir = args.export_dir or args.out
+        export_dir.mkdir(parents=True, exist_ok=True)
         export_and_check(
             args.out / CHECKPOINT,
-            args.out,
+            export_dir,
             validation=validation,
             grid=GRID,
             norm=NORM,
