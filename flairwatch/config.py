@@ -23,6 +23,8 @@ DEFAULT_SETTLE_SECONDS = 30.0
 DEFAULT_RESCAN_SECONDS = 300.0
 DEFAULT_MIN_LESION_MM3 = 10.0
 DEFAULT_CONNECTIVITY = 26
+# lesion voxels this near the ventricles count as periventricular (common practice: 10 mm)
+DEFAULT_PERIVENTRICULAR_MM = 10.0
 DEFAULT_RETRY_SECONDS = 30.0
 DEFAULT_OVERDUE_SECONDS = 600.0
 DEFAULT_OVERDUE_FACTOR = 5.0
@@ -87,6 +89,7 @@ class Config:
     threshold: float | None = None  # None = the manifest's
     min_lesion_mm3: float = DEFAULT_MIN_LESION_MM3
     connectivity: int = DEFAULT_CONNECTIVITY
+    periventricular_mm: float = DEFAULT_PERIVENTRICULAR_MM
     select: SelectRules = field(default_factory=lambda: rules_from_mapping(None))
     identifiers: Identifiers = field(default_factory=Identifiers)
     delete_inbox_files: bool = False
@@ -183,6 +186,10 @@ def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None)
         values["threshold"] = _number("threshold", raw["threshold"], lo=0.0, hi=1.0)
     if "min_lesion_mm3" in raw:
         values["min_lesion_mm3"] = _number("min_lesion_mm3", raw["min_lesion_mm3"], lo=0)
+    if "periventricular_mm" in raw:
+        values["periventricular_mm"] = _number(
+            "periventricular_mm", raw["periventricular_mm"], lo=0
+        )
     if "connectivity" in raw:
         if raw["connectivity"] not in (6, 18, 26):
             raise ConfigInvalid(

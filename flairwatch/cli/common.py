@@ -40,6 +40,12 @@ def add_model_options(p: argparse.ArgumentParser) -> None:
     )
     p.add_argument("--min-lesion-mm3", type=float, help="drop lesions smaller than this, in mm^3")
     p.add_argument("--connectivity", type=int, choices=(6, 18, 26), help="lesion neighbourhood")
+    p.add_argument(
+        "--periventricular-mm",
+        type=float,
+        help="lesion voxels this near the ventricles count as periventricular, in mm (default 10; "
+        "models with a ventricle output only)",
+    )
     p.add_argument("--threads", type=int, help="ONNX Runtime threads (default: CPUs available)")
 
 
@@ -55,7 +61,15 @@ def config_from_args(args: argparse.Namespace, *extra: str) -> Config:
     from flairwatch.config import load_config, with_overrides
 
     cfg = load_config(getattr(args, "config", None))
-    names = ("model", "threshold", "min_lesion_mm3", "connectivity", "threads", *extra)
+    names = (
+        "model",
+        "threshold",
+        "min_lesion_mm3",
+        "connectivity",
+        "periventricular_mm",
+        "threads",
+        *extra,
+    )
     cfg = with_overrides(cfg, **{n: getattr(args, n, None) for n in names})
     if hasattr(args, "model"):
         from flairwatch.engine.models import manifest_path

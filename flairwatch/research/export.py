@@ -76,6 +76,9 @@ EXPORT_COLUMNS: tuple[str, ...] = (
     "lesion_count",
     "intracranial_volume_ml",
     "wmh_fraction_of_intracranial",
+    "ventricle_volume_ml",
+    "periventricular_volume_ml",
+    "deep_volume_ml",
     "automatic_lesion_volume_ml",
     "automatic_lesion_count",
     "mask_source",
@@ -174,6 +177,13 @@ def build_row(
         "lesion_count": count,
         "intracranial_volume_ml": icv,
         "wmh_fraction_of_intracranial": fraction,
+        # empty for models without a ventricle output; the split describes the automatic mask, so
+        # it is left empty where a corrected mask replaces it
+        "ventricle_volume_ml": summary.get("ventricle_volume_ml"),
+        "periventricular_volume_ml": (
+            None if correction is not None else summary.get("periventricular_volume_ml")
+        ),
+        "deep_volume_ml": None if correction is not None else summary.get("deep_volume_ml"),
         "automatic_lesion_volume_ml": auto_ml,
         "automatic_lesion_count": auto_n,
         "mask_source": "automatic" if correction is None else "corrected",
