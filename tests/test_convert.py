@@ -82,7 +82,7 @@ def test_inplane_resampling_matches_simpleitk_resample() -> None:
 
 def test_round_trip_is_exact_when_spacing_matches_the_grid() -> None:
     # Same spacing as the model grid: the way back must return the input voxel for voxel
-    # (DESIGN.md: exact where the model grid keeps the series' slice stack).
+    # (docs/architecture.md: exact where the model grid keeps the series' slice stack).
     affine = np.eye(4)
     affine[:3, :3] = ORIENTATIONS["sagittal"]
     vol = Volume(_smooth((33, 41, 27)), affine)

@@ -144,7 +144,7 @@ def _sr_dataset() -> Dataset:
         (lambda p: _touch(p, b""), "empty file"),
         (lambda p: _touch(p, b"patient notes\nnot an image\n" * 20), "not DICOM"),
         # junk that opens like a group 0008 element is parsed with force=True; the UID rule
-        # rejects it (RELIABILITY.md: force=True "reads" any junk -> require the UIDs)
+        # rejects it (docs/architecture.md, failure modes: force=True "reads" any junk -> require the UIDs)
         (lambda p: _touch(p, b"\x08\x00" + bytes(range(256)) * 4), "no Study Instance UID"),
         (lambda p: shutil.copy(DICOMDIR_TESTS / "DICOMDIR", p), "no Study Instance UID"),
         (lambda p: shutil.copy(PYDICOM_FILES / "reportsi.dcm", p), "not an image"),

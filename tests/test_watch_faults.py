@@ -178,7 +178,7 @@ def test_hostile_header_values_stay_inside_results(
     for path in (base / "results").rglob("*"):
         assert results in path.resolve().parents
         rel = path.relative_to(base / "results")
-        # result paths are built from keys only: short hex keys and fixed file names (DESIGN.md)
+        # result paths are built from keys only: short hex keys and fixed file names (docs/architecture.md)
         assert all(re.fullmatch(r"[A-Za-z0-9._-]+", part) for part in rel.parts), rel
     assert "escape" not in str(result) and "evil" not in str(result)
 

@@ -1,6 +1,6 @@
 """Inbox scans and the settle rule: when is a series complete enough to process?
 
-DICOM has no "series complete" marker, so a series is ready when (RELIABILITY.md):
+DICOM has no "series complete" marker, so a series is ready when (docs/architecture.md, failure modes):
 
 - no new instance has arrived for ``settle_seconds`` (time of observation, not file mtime:
   copies often keep the sender's mtime),

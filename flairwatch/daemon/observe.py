@@ -1,6 +1,6 @@
 """Filesystem events as hints: a supervised watchdog observer that only says "look again soon".
 
-Events are never trusted to be complete (RELIABILITY.md): the kernel queue overflows in bursts,
+Events are never trusted to be complete (docs/architecture.md, failure modes): the kernel queue overflows in bursts,
 network shares send none for remote writes, and nothing is seen while the daemon is down. So the
 handler does one thing, call ``wake(reason)``, and the daemon's full scans decide what exists.
 

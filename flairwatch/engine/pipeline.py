@@ -146,7 +146,7 @@ class Engine:
     def version_dir(
         self, results_root: Path, source: Source, *, secret: bytes, revision: int = 1
     ) -> Path:
-        """Where this source's result for this model goes (see DESIGN.md)."""
+        """Where this source's result for this model goes (see docs/architecture.md)."""
         patient_id = source.header.patient_id if source.header else None
         subject = keys.subject_key(
             patient_id if source.kind == "dicom" else source.series_id, secret

@@ -1,6 +1,6 @@
 """Result folders on disk: atomic build-and-rename, adoption after a crash, the current pointer.
 
-Layout (DESIGN.md)::
+Layout (docs/architecture.md)::
 
     <results>/<subject-key>/<study-key>/<series-key>/<model-name>-<model-version>/
 

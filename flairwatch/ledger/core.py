@@ -1,6 +1,6 @@
 """The ledger's connection: opening, creating and migrating the schema, transactions, backup.
 
-Rules that keep the ledger sound (RELIABILITY.md):
+Rules that keep the ledger sound (docs/architecture.md, failure modes):
 
 - local disk only: WAL needs shared memory that network file systems do not provide
   (sqlite.org/wal.html), so a state folder on NFS/SMB is refused;

@@ -1,4 +1,4 @@
-"""Write a phantom as a case folder (DESIGN.md "Case folders").
+"""Write a phantom as a case folder (docs/architecture.md "Case folders").
 
 ```
 <case_dir>/image/*.dcm                   DICOM series (one file per slice)

@@ -1,6 +1,6 @@
 """``flairwatch qc cases``: corrected masks as case folders, to feed ``validate`` and training.
 
-For every series revision with a corrected mask, one folder in the case layout of DESIGN.md::
+For every series revision with a corrected mask, one folder in the case layout of docs/architecture.md::
 
     <out>/<series-key>/image.nii.gz          the series on its own grid (float32; RAS affine)
     <out>/<series-key>/wmh_reference.nii.gz  the latest corrected mask (byte copy, same grid)

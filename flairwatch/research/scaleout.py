@@ -5,7 +5,7 @@ dask-jobqueue on Slurm) or ``--cluster local:N`` (a local cluster of N worker pr
 
 - Only the coordinator (this process) opens the ledger: it claims re-run jobs, sends each
   worker the series' file paths, and records what comes back. The ledger stays on the
-  coordinator's local disk (RELIABILITY.md: SQLite over a network file system corrupts).
+  coordinator's local disk (docs/architecture.md, failure modes: SQLite over a network file system corrupts).
 - Workers build one :class:`~flairwatch.engine.pipeline.Engine` each (a worker plugin, so the ONNX
   session is reused) and write result folders straight into the shared results folder, with
   the same build-then-rename as on one machine; a folder finished by a worker that the
