@@ -103,7 +103,10 @@ def run_validate(
     """
     case_dirs = find_case_folders(cases_root)
     if not case_dirs:
-        raise ConfigInvalid(f"no case folders under {cases_root}; see the layout in docs/architecture.md")
+        raise ConfigInvalid(
+            f"no case folders under {cases_root}: each case needs CASE/image/ (DICOM) or "
+            "CASE/image.nii.gz, and CASE/wmh_reference.nii.gz"
+        )
     if out is None:
         out = cases_root.resolve().parent / f"validation-{engine.manifest.label}"
     check_output_folder(out, cases_root)
