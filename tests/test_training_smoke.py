@@ -114,6 +114,7 @@ def test_two_output_checkpoint_resumes_and_warm_starts(cache: Path, tmp_path: Pa
     state = torch.load(old / "training-checkpoint.pt", weights_only=False)
     two = train_model.build_net((4, 8, 8, 16), n_out=2)
     state["model"] = two.state_dict()
+    state["optimizer"] = torch.optim.AdamW(two.parameters()).state_dict()
     del state["outputs"], state["origin"]  # the format written before the ventricle output
     torch.save(state, old / "training-checkpoint.pt")
     _run(train_model, cache, old, "--minutes", "5", "--max-steps", "2")
