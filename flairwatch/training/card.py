@@ -145,8 +145,9 @@ N x {len(facts["outputs"])} x 224 x 224, batch axis dynamic). File size {facts["
 ## Training time and hardware
 This model: {facts["train_minutes"]:.1f} minutes ({facts["steps"]} steps of batch
 {facts["batch_size"]}); including the run it was warm-started from, {total_min:.1f} minutes,
-i.e. {total_min / 60.0:.2f} CPU-hours on 2 cores, shared with other work ({facts["hardware"]},
-torch {facts["torch"]}, 2 threads). No GPU.
+i.e. {total_min / 60.0:.2f} hours of training on 2 CPU cores (wall clock of the training steps;
+the cores were shared with other work, so a quiet machine needs less). {facts["hardware"]},
+torch {facts["torch"]}, 2 threads. No GPU.
 
 ## Measured
 - Inference time, ONNX Runtime, 2 threads, 48 slices of 224 x 224 (median of 3):
