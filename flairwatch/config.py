@@ -28,6 +28,7 @@ DEFAULT_PERIVENTRICULAR_MM = 10.0
 DEFAULT_RETRY_SECONDS = 30.0
 DEFAULT_OVERDUE_SECONDS = 600.0
 DEFAULT_OVERDUE_FACTOR = 5.0
+DEFAULT_WORKER_MEMORY_MB = 4096
 
 
 def is_model_name(ref: str | Path) -> bool:
@@ -97,6 +98,7 @@ class Config:
     retry_seconds: float = DEFAULT_RETRY_SECONDS  # first retry after a failure; then doubled
     overdue_seconds: float = DEFAULT_OVERDUE_SECONDS  # status: a job running longer than
     overdue_factor: float = DEFAULT_OVERDUE_FACTOR  # max(these s, factor x median) is a problem
+    worker_memory_mb: int = DEFAULT_WORKER_MEMORY_MB  # address-space cap per worker; 0 = none
 
     def threads_per_worker(self) -> int:
         if self.threads > 0:
@@ -176,7 +178,7 @@ def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None)
     for key in ("polling", "delete_inbox_files"):
         if key in raw:
             values[key] = _flag(key, raw[key])
-    for key, lo in (("workers", 1), ("threads", 0), ("keep_versions", 0)):
+    for key, lo in (("workers", 1), ("threads", 0), ("keep_versions", 0), ("worker_memory_mb", 0)):
         if key in raw:
             v = raw[key]
             if isinstance(v, bool) or not isinstance(v, int) or v < lo:

@@ -104,7 +104,10 @@ def test_start_up_repairs_pointers_and_leftover_inputs(tmp_path: Path) -> None:
             path = inbox / uid / "1.dcm"
             path.parent.mkdir(parents=True)
             path.write_bytes(b"x")
-            led.record_scan([FileRow(str(path), 1, 1, f"{uid}.1", "1.2", uid)], [], 1.0)
+            st = path.stat()  # the real size and mtime: files are deleted only if unchanged
+            led.record_scan(
+                [FileRow(str(path), st.st_size, st.st_mtime_ns, f"{uid}.1", "1.2", uid)], [], 1.0
+            )
             row, job = led.new_revision("1.2", uid, _fixed_keys(f"e{uid}"), 1.0)
             led.take_files(row.id, "1.2", uid)
             led.move_job(job.id, [JobState.SETTLING], JobState.QUEUED, 1.0)
@@ -118,7 +121,10 @@ def test_start_up_repairs_pointers_and_leftover_inputs(tmp_path: Path) -> None:
         # a late instance of 9.2 makes a second revision, still settling: its inputs must stay
         late = inbox / "9.2" / "2.dcm"
         late.write_bytes(b"y")
-        led.record_scan([FileRow(str(late), 1, 1, "9.2.2", "1.2", "9.2")], [], 4.0)
+        st = late.stat()
+        led.record_scan(
+            [FileRow(str(late), st.st_size, st.st_mtime_ns, "9.2.2", "1.2", "9.2")], [], 4.0
+        )
         row2, _ = led.new_revision("1.2", "9.2", _fixed_keys("e9.2-r2"), 4.0)
         led.take_files(row2.id, "1.2", "9.2")
         # the crash: 9.1's pointer never written, 9.2's points at something else

@@ -26,7 +26,8 @@ from enum import StrEnum
 from pathlib import Path
 
 from flairwatch.intake.assemble import group_series
-from flairwatch.intake.discover import iter_candidate_files, read_record
+from flairwatch.intake.discover import read_record, walk_folder
+from flairwatch.intake.fsafe import Seen
 from flairwatch.ledger.store import TERMINAL_STATES, FileRow, JobState
 from flairwatch.records import FileRecord, Series
 
@@ -48,13 +49,19 @@ class Scan:
 
 
 class InboxScanner:
-    """Full scans of one inbox folder with a header cache keyed by (path, size, mtime)."""
+    """Full scans of one inbox folder with a header cache keyed by (path, size, mtime).
+
+    By default the walk goes through directory descriptors and never follows a link
+    (:func:`flairwatch.intake.discover.walk_folder`), and each header is read from the very file
+    the walk saw (device, inode, size, mtime); ``candidates``, ``read`` and ``stat`` replace
+    that with path-based calls (for tests with fake file systems).
+    """
 
     def __init__(
         self,
         root: Path,
         *,
-        candidates: Candidates = iter_candidate_files,
+        candidates: Candidates | None = None,
         read: ReadRecord = read_record,
         stat: Callable[[Path], os.stat_result] = os.stat,
     ) -> None:
@@ -64,29 +71,45 @@ class InboxScanner:
         self._stat = stat
         self._cache: dict[str, FileRecord] = {}
         self._ctimes: dict[str, int] = {}
+        self._ids: dict[str, tuple[int, int]] = {}
 
     def forget(self, paths: Iterable[str]) -> None:
         for p in paths:
             self._cache.pop(p, None)
 
+    def identity(self, path: str) -> tuple[int, int] | None:
+        """(device, inode) of a file as the last scan saw it, or None if it did not see it."""
+        return self._ids.get(path)
+
+    def _seen(self) -> Iterator[Seen]:
+        if self._candidates is None:
+            yield from walk_folder(self.root)
+            return
+        for path in self._candidates([self.root]):
+            try:
+                yield Seen.of(path, self._stat(path))
+            except OSError:
+                continue  # vanished since it was listed
+
     def scan(self) -> Scan:
         found: dict[str, FileRecord] = {}
         ctimes: dict[str, int] = {}
+        ids: dict[str, tuple[int, int]] = {}
         read = 0
-        for path in self._candidates([self.root]):
-            key = str(path)
-            try:
-                st = self._stat(path)
-            except OSError:
-                continue  # vanished since it was listed
+        for seen in self._seen():
+            key = str(seen.path)
             cached = self._cache.get(key)
-            if cached is None or _stale(cached, st, self._ctimes.get(key)):
-                cached = self._read(path)
+            if cached is None or _stale(cached, seen, self._ctimes.get(key)):
+                if self._read is read_record:
+                    cached = read_record(seen.path, root=self.root, expect=seen)
+                else:
+                    cached = self._read(seen.path)
                 read += 1
             found[key] = cached
-            ctimes[key] = st.st_ctime_ns
+            ctimes[key] = seen.ctime_ns
+            ids[key] = (seen.dev, seen.ino)
         gone = sorted(set(self._cache) - set(found))
-        self._cache, self._ctimes = found, ctimes
+        self._cache, self._ctimes, self._ids = found, ctimes, ids
         groups, unusable = group_series(found.values())
         return Scan(found, {s.key: s for s in groups}, unusable, read, gone)
 
@@ -95,13 +118,13 @@ class InboxScanner:
 UNREADABLE_PREFIX = "cannot read"
 
 
-def _stale(cached: FileRecord, st: os.stat_result, ctime_ns: int | None) -> bool:
+def _stale(cached: FileRecord, seen: Seen, ctime_ns: int | None) -> bool:
     """Whether a file's cached header must be read again (pure)."""
-    if (cached.size, cached.mtime_ns) != (st.st_size, st.st_mtime_ns):
+    if (cached.size, cached.mtime_ns) != (seen.size, seen.mtime_ns):
         return True
     if cached.reason is None:
         return False
-    return cached.reason.startswith(UNREADABLE_PREFIX) or ctime_ns != st.st_ctime_ns
+    return cached.reason.startswith(UNREADABLE_PREFIX) or ctime_ns != seen.ctime_ns
 
 
 def file_rows(scan: Scan) -> list[FileRow]:

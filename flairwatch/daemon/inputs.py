@@ -3,19 +3,21 @@
 Refused series may be moved to the quarantine folder (same relative paths, never deleted);
 files of done and skipped series are deleted only when ``delete_inbox_files`` is set. Every
 file moved or deleted is forgotten by the scanner so the next scan does not read it again.
+A file is moved or deleted only while it is still the one that was scanned (same size and
+mtime, same device and inode, reached without following a link): a file replaced since then
+is somebody's new data and stays where it is.
 """
 
 from __future__ import annotations
 
-import contextlib
 import logging
-import os
 import shutil
 import time
 from pathlib import Path
 
 from flairwatch.config import Config
 from flairwatch.daemon.inbox import InboxScanner
+from flairwatch.intake.fsafe import still_same, unlink_if_same
 from flairwatch.ledger.store import FileRow, JobRow, Ledger
 
 log = logging.getLogger("flairwatch.daemon.watch")
@@ -37,6 +39,9 @@ class InboxFiles:
         moved = []
         for f in self.ledger.revision_files(job.series_id):
             src = Path(f.path)
+            if not still_same(self.inbox, src, f.size, f.mtime_ns, self.scanner.identity(f.path)):
+                log.warning("%s changed or was replaced since it was scanned; left in place", src)
+                continue
             try:
                 dst = target / src.relative_to(self.inbox)
             except ValueError:
@@ -57,8 +62,12 @@ class InboxFiles:
         if not self.cfg.delete_inbox_files:
             return
         files: list[FileRow] = self.ledger.revision_files(series_id)
+        deleted = []
         for f in files:
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(f.path)
-        self.scanner.forget(f.path for f in files)
-        self.ledger.record_scan([], [f.path for f in files], time.time())
+            ids = self.scanner.identity(f.path)
+            if unlink_if_same(self.inbox, Path(f.path), f.size, f.mtime_ns, ids):
+                deleted.append(f.path)
+            else:
+                log.warning("%s changed or was replaced since it was scanned; not deleted", f.path)
+        self.scanner.forget(deleted)
+        self.ledger.record_scan([], deleted, time.time())

@@ -95,8 +95,29 @@ def _die_with_parent(parent_pid: int) -> None:
         os._exit(1)
 
 
-def classify(exc: BaseException) -> Report:
+def limit_memory(megabytes: int) -> None:
+    """Cap this process's address space (RLIMIT_AS) at ``megabytes`` MiB; 0 = leave it.
+
+    Past the cap an allocation fails with MemoryError in this process only, where a series
+    that needs too much memory is reported as failed; without it the kernel's OOM killer may
+    pick any process on the machine. A lower limit set from outside is kept.
+    """
+    if megabytes <= 0:
+        return
+    want = megabytes * 1024 * 1024
+    soft, hard = resource.getrlimit(resource.RLIMIT_AS)
+    if hard != resource.RLIM_INFINITY:
+        want = min(want, hard)
+    if soft == resource.RLIM_INFINITY or want < soft:
+        resource.setrlimit(resource.RLIMIT_AS, (want, hard))
+
+
+def classify(exc: BaseException, memory_mb: int = 0) -> Report:
     """Turn an exception from processing into a report (job_id filled in by the caller)."""
+    if isinstance(exc, MemoryError):
+        cap = f"worker_memory_mb ({memory_mb} MiB)" if memory_mb > 0 else "the memory available"
+        return Report("failed", message=f"out of memory: the series needs more than {cap}; "
+                      "raise worker_memory_mb or check the series' size")  # fmt: skip
     if isinstance(exc, InputRejected):
         return Report("refused", message=str(exc))
     if isinstance(exc, StageFailed):
@@ -126,6 +147,10 @@ def worker_main(
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     _die_with_parent(parent_pid)
     os.umask(umask)
+    try:
+        limit_memory(cfg.worker_memory_mb)
+    except (OSError, ValueError) as exc:  # a platform without RLIMIT_AS: run without the cap
+        log.warning("worker memory limit not set: %s", exc)
     from flairwatch.engine.pipeline import Engine  # heavy import (ONNX Runtime) only in workers
 
     try:
@@ -144,6 +169,7 @@ def worker_main(
         if task is None:
             return
         t0 = time.monotonic()
+        starved = False
         try:
             out = engine.process(task.series, cfg.results, secret=secret, revision=task.revision)
             report = Report(
@@ -154,10 +180,14 @@ def worker_main(
             )
         except Exception as exc:  # recorded per series; the worker carries on
             log.debug("job %d failed", task.job_id, exc_info=True)
-            report = classify(exc)
+            report = classify(exc, cfg.worker_memory_mb)
+            # after a MemoryError a native library may be left half-initialised: start afresh
+            starved = isinstance(exc, MemoryError)
         seconds, rss_kb = time.monotonic() - t0, current_rss_kb()
         conn.send(replace(report, job_id=task.job_id, seconds=seconds, rss_kb=rss_kb,
-                          retiring=n == tasks))  # fmt: skip
+                          retiring=n == tasks or starved))  # fmt: skip
+        if starved:
+            return
 
 
 @dataclass

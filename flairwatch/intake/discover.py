@@ -21,6 +21,8 @@ from pydicom.multival import MultiValue
 from pydicom.uid import UID
 
 from flairwatch.errors import InputRejected
+from flairwatch.intake.fsafe import FileChanged, Seen, open_file, walk
+from flairwatch.intake.limits import file_size_problem, image_size_problem
 from flairwatch.records import FileRecord, SeriesHeader
 
 logger = logging.getLogger(__name__)
@@ -62,8 +64,8 @@ def is_nifti_path(path: Path) -> bool:
 def iter_candidate_files(
     roots: Sequence[Path],
     *,
-    listdir: ListDir = os.listdir,
-    lstat: Stat = os.lstat,
+    listdir: ListDir | None = None,
+    lstat: Stat | None = None,
 ) -> Iterator[Path]:
     """Yield the files under ``roots`` that may hold DICOM or NIfTI data, in a fixed order.
 
@@ -73,7 +75,10 @@ def iter_candidate_files(
     a root are never followed: one pointing outside would read files the inbox does not own,
     and one pointing inside leads to files the walk reaches anyway (twice would make
     duplicates) or to a loop. Entries that vanish or cannot be read during the walk are
-    skipped with a log line.
+    skipped with a log line. Folders are opened through directory descriptors
+    (:func:`flairwatch.intake.fsafe.walk`), so a folder swapped for a link during the walk is not
+    entered either; ``listdir`` and ``lstat`` replace that with path-based calls (for tests
+    that fake a hostile file system).
 
     Raises
     ------
@@ -82,15 +87,29 @@ def iter_candidate_files(
     """
     for root in roots:
         try:
-            st = lstat(root)
-            if stat_mod.S_ISLNK(st.st_mode):
-                st = os.stat(root)
+            st = os.stat(root)
         except OSError:
             raise InputRejected(f"{root}: no such file or folder; check the path") from None
-        if stat_mod.S_ISDIR(st.st_mode):
-            yield from _walk(root, listdir, lstat)
-        else:
+        if not stat_mod.S_ISDIR(st.st_mode):
             yield root
+        elif listdir is None and lstat is None:
+            yield from (seen.path for seen in walk_folder(root))
+        else:
+            yield from _walk(root, listdir or os.listdir, lstat or os.lstat)
+
+
+def walk_folder(root: Path) -> Iterator[Seen]:
+    """Candidate files below the folder ``root`` with what a scan saw of each (no links followed).
+
+    Raises
+    ------
+    InputRejected
+        When ``root`` cannot be opened as a folder.
+    """
+    try:
+        yield from walk(root, is_ignored_name)
+    except OSError:
+        raise InputRejected(f"{root}: no such folder, or not readable; check the path") from None
 
 
 def _walk(folder: Path, listdir: ListDir, lstat: Stat) -> Iterator[Path]:
@@ -285,35 +304,66 @@ def not_image_reason(ds: Dataset) -> str | None:
     return None
 
 
+def declared_size_problem(ds: Dataset) -> str | None:
+    """Why the image size a header declares is over the caps, or None (no allocation)."""
+    rows, cols = _int(ds, "Rows"), _int(ds, "Columns")
+    if rows is None or cols is None:
+        return None  # not an image: not_image_reason says so
+    frames = _int(ds, "NumberOfFrames")
+    bits = _int(ds, "BitsAllocated")
+    return image_size_problem(rows, cols, 1 if frames is None else frames, bits or 16)
+
+
 def _looks_like_dicom(head: bytes) -> bool:
     return head[128:132] == b"DICM" or head[:2] in _RAW_DICOM_STARTS
 
 
-def read_record(path: Path, *, stat: Stat = os.stat) -> FileRecord:
+def read_record(
+    path: Path, *, stat: Stat = os.stat, root: Path | None = None, expect: Seen | None = None
+) -> FileRecord:
     """Read one file's header (never its pixel data) into a :class:`FileRecord`.
 
-    Never raises for bad input: a file that is unreadable, not DICOM, lacks the Study, Series or
-    SOP Instance UID, or is not an image gets ``header=None`` and a ``reason``. Size (bytes) and
-    mtime (ns) come from the same ``stat`` call.
+    Never raises for bad input: a file that is unreadable, not DICOM, too large, lacks the
+    Study, Series or SOP Instance UID, declares an image size over the caps of
+    :mod:`flairwatch.intake.limits`, or is not an image gets ``header=None`` and a ``reason``.
+    Size (bytes) and mtime (ns) come from the same ``stat`` call.
+
+    With ``root`` and ``expect`` (an inbox scan), the file is opened relative to directory
+    descriptors without following links, and it must still be the file the scan saw; one that
+    changed gets a reason starting "cannot read", so the next scan reads it again.
     """
-    try:
-        st = stat(path)
-    except OSError as exc:
-        return FileRecord(path, 0, 0, reason=f"cannot read: {exc.strerror or exc}")
-    size, mtime_ns = int(st.st_size), int(st.st_mtime_ns)
+    if expect is not None:
+        size, mtime_ns = expect.size, expect.mtime_ns
+    else:
+        try:
+            st = stat(path)
+        except OSError as exc:
+            return FileRecord(path, 0, 0, reason=f"cannot read: {exc.strerror or exc}")
+        size, mtime_ns = int(st.st_size), int(st.st_mtime_ns)
 
     def rejected(reason: str, sop_uid: str | None = None) -> FileRecord:
         return FileRecord(path, size, mtime_ns, sop_uid=sop_uid, reason=reason)
 
     if size == 0:
         return rejected("empty file")
+    too_big = file_size_problem(size)
+    if too_big is not None:
+        return rejected(too_big)
     try:
-        with open(path, "rb") as fh:
+        if root is not None or expect is not None:
+            fh = os.fdopen(open_file(path, root=root, expect=expect), "rb")
+        else:
+            fh = open(path, "rb")  # noqa: SIM115 - closed by the with below
+        with fh:
             head = fh.read(132)
             if not _looks_like_dicom(head):
                 return rejected("NIfTI file, not DICOM" if is_nifti_path(path) else "not DICOM")
             fh.seek(0)
             ds = pydicom.dcmread(fh, stop_before_pixels=True, force=True)
+            if expect is not None and not expect.same(os.fstat(fh.fileno())):
+                raise FileChanged(f"{path} changed while being read")
+    except FileChanged:
+        return rejected("cannot read: changed while being read; read again at the next scan")
     except OSError as exc:
         return rejected(f"cannot read: {exc.strerror or exc}")
     except Exception as exc:  # pydicom raises many types on corrupt headers
@@ -327,7 +377,7 @@ def read_record(path: Path, *, stat: Stat = os.stat) -> FileRecord:
     ):
         if not _text(ds, keyword):
             return rejected(f"no {label} Instance UID", sop_uid)
-    why = not_image_reason(ds)
+    why = not_image_reason(ds) or declared_size_problem(ds)
     if why is not None:
         return rejected(why, sop_uid)
     try:

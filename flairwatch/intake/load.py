@@ -9,8 +9,10 @@ the pixel data and fills the volume. Every refusal raises
 
 from __future__ import annotations
 
+import io
 import logging
 import math
+import os
 import types
 from collections.abc import Sequence
 from pathlib import Path
@@ -20,10 +22,12 @@ import numpy as np
 import numpy.typing as npt
 import pydicom
 from pydicom.dataset import Dataset
+from pydicom.encaps import parse_basic_offsets, parse_fragments
 from pydicom.pixels import get_decoder
 from pydicom.uid import UID
 
-from flairwatch.intake.discover import not_image_reason
+from flairwatch.errors import InputRejected
+from flairwatch.intake.discover import declared_size_problem, not_image_reason
 from flairwatch.intake.geometry import (
     ORIENTATION_TOLERANCE,
     Frame,
@@ -32,6 +36,7 @@ from flairwatch.intake.geometry import (
     reject,
     stack_geometry,
 )
+from flairwatch.intake.limits import file_size_problem, volume_size_problem
 from flairwatch.records import Series, SeriesHeader
 from flairwatch.volume import Volume, ras_to_lps
 
@@ -98,6 +103,7 @@ def _check_pixel_data(ds: Dataset, label: str) -> None:
                 f"transfer syntax {ts.name} ({ts}) needs a decoder that is not installed",
                 f"install {package}",
             )
+        _check_fragments(ds, label)
         return
     if "PixelData" in ds:
         rows, cols = int(ds.Rows), int(ds.Columns)
@@ -111,6 +117,38 @@ def _check_pixel_data(ds: Dataset, label: str) -> None:
                 f"pixel data is {actual} bytes, {expected} expected (file cut short)",
                 "resend the series",
             )
+
+
+def _check_fragments(ds: Dataset, label: str) -> None:
+    """Refuse encapsulated pixel data whose item structure cannot hold the declared frames.
+
+    Only the item tags and lengths are walked (no decoding, no copy): each frame needs at least
+    one fragment, and a damaged item list fails to parse.
+    """
+    frames = int(ds.get("NumberOfFrames") or 1)
+    try:
+        buffer = io.BytesIO(ds.PixelData)
+        offsets = parse_basic_offsets(buffer)
+        fragments, _ = parse_fragments(buffer)
+    except Exception as exc:  # a damaged item list: wrong tags or lengths past the end
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise reject(
+            label,
+            f"compressed pixel data is damaged ({printable(first, 100)})",
+            "resend the series",
+        ) from None
+    if len(offsets) > 1 and len(offsets) != frames:
+        raise reject(
+            label,
+            f"compressed pixel data indexes {len(offsets)} frames, the header {frames}",
+            "resend the series",
+        )
+    if fragments < frames:
+        raise reject(
+            label,
+            f"compressed pixel data holds {fragments} fragments for {frames} frames (cut short)",
+            "resend the series",
+        )
 
 
 def _pixels(ds: Dataset, label: str) -> npt.NDArray[np.generic]:
@@ -153,7 +191,11 @@ def volume_from_datasets(datasets: Sequence[Dataset], label: str) -> Volume:
         if why is not None:
             todo = "only image series can be processed"
             raise reject(label, why, todo if why.startswith("not an") else "resend the series")
-        # Cheap checks of every file first: a series still arriving shows up here.
+        # Cheap checks of every file first: a series still arriving shows up here, and sizes
+        # are checked on the header before anything is decoded or allocated.
+        too_big = declared_size_problem(ds)
+        if too_big is not None:
+            raise reject(label, too_big, "only MR-sized images can be processed")
         _check_pixel_data(ds, label)
         frames.extend(frames_of(ds, index, label))
     shapes = sorted({f.shape for f in frames})
@@ -182,6 +224,9 @@ def volume_from_datasets(datasets: Sequence[Dataset], label: str) -> Volume:
         label,
     )
     rows, cols = frames[0].shape
+    too_big = volume_size_problem(rows, cols, len(frames))
+    if too_big is not None:
+        raise reject(label, too_big, "split the series or send a smaller one")
     data = np.empty((cols, rows, len(frames)), dtype=np.float32)
     pixels: dict[int, npt.NDArray[np.generic]] = {}
     for k, idx in enumerate(order):
@@ -208,8 +253,22 @@ def read_datasets(series: Series) -> list[Dataset]:
     label = series_label(series.header)
     datasets: list[Dataset] = []
     for record in series.files:
+        name = printable(record.path.name)
         try:
-            datasets.append(pydicom.dcmread(record.path, force=True))
+            with open(record.path, "rb") as fh:
+                st = os.fstat(fh.fileno())
+                if (st.st_size, st.st_mtime_ns) != (record.size, record.mtime_ns):
+                    raise reject(
+                        label,
+                        f"{name} changed since it was scanned",
+                        "it is read again once it stops changing",
+                    )
+                too_big = file_size_problem(st.st_size)
+                if too_big is not None:
+                    raise reject(label, f"{name}: {too_big}", "resend the series")
+                datasets.append(pydicom.dcmread(fh, force=True))
+        except InputRejected:
+            raise
         except OSError as exc:
             raise reject(
                 label,
