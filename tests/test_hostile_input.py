@@ -214,3 +214,30 @@ def test_oversized_file_refused_before_reading(tmp_path: Path) -> None:
     record = read_record(path)
     assert record.reason is not None and "over the 2 GiB limit" in record.reason
     assert np.isclose(record.size, 3 * 1024**3)
+
+
+def test_damaged_value_length_reads_only_what_is_there(tmp_path: Path) -> None:
+    # PS3.5 7.1.2: OW values carry a 4-byte length; 0xFFFFFFF0 declares almost 4 GiB
+    paths = write_series(tmp_path / "a")
+    data = paths[0].read_bytes()
+    at = data.find(b"\xe0\x7f\x10\x00OW")
+    assert at > 0
+    paths[0].write_bytes(data[: at + 8] + b"\xf0\xff\xff\xff" + data[at + 12 :])
+    records = [read_record(p) for p in paths]
+    header = records[0].header
+    assert header is not None  # the header before the pixels is intact
+    tracemalloc.start()
+    try:
+        # the pixel data is the last element, so what is there is the whole image: it loads,
+        # and the declared 4 GiB are never allocated
+        volume = load_series(Series(header, tuple(records)))
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert volume.data.shape == (64, 64, 12)
+    assert peak < 20_000_000, peak  # the series itself is about 100 kB
+    # cut 100 bytes short as well: refused with the sizes
+    paths[1].write_bytes(paths[0].read_bytes()[:-100])
+    records = [read_record(p) for p in paths]
+    with pytest.raises(InputRejected, match=r"pixel data is \d+ bytes, 8192 expected"):
+        load_series(Series(header, tuple(r for r in records if r.header is not None)))

@@ -21,7 +21,7 @@ from pydicom.multival import MultiValue
 from pydicom.uid import UID
 
 from flairwatch.errors import InputRejected
-from flairwatch.intake.fsafe import FileChanged, Seen, open_file, walk
+from flairwatch.intake.fsafe import CappedReader, FileChanged, Seen, open_file, walk
 from flairwatch.intake.limits import file_size_problem, image_size_problem
 from flairwatch.records import FileRecord, SeriesHeader
 
@@ -351,10 +351,10 @@ def read_record(
         return rejected(too_big)
     try:
         if root is not None or expect is not None:
-            fh = os.fdopen(open_file(path, root=root, expect=expect), "rb")
+            fd = open_file(path, root=root, expect=expect)
         else:
-            fh = open(path, "rb")  # noqa: SIM115 - closed by the with below
-        with fh:
+            fd = os.open(path, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0))
+        with CappedReader(fd) as fh:
             head = fh.read(132)
             if not _looks_like_dicom(head):
                 return rejected("NIfTI file, not DICOM" if is_nifti_path(path) else "not DICOM")

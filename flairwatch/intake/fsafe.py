@@ -9,6 +9,7 @@ with ``O_NOFOLLOW``, every file likewise, and the opened file is compared with w
 
 from __future__ import annotations
 
+import io
 import logging
 import os
 import stat as stat_mod
@@ -151,6 +152,26 @@ def open_file(path: Path, *, root: Path | None = None, expect: Seen | None = Non
         os.close(fd)
         raise
     return fd
+
+
+class CappedReader(io.BufferedReader):
+    """A binary file whose reads never ask for more than is left in the file.
+
+    A damaged value length in a DICOM file (say 0xFFFFFFF0) makes a parser call ``read(4 GB)``;
+    a plain file object allocates the buffer it is asked for before it reads, so this one cuts
+    each request to the bytes that remain.
+    """
+
+    def __init__(self, fd: int) -> None:
+        super().__init__(io.FileIO(fd, "rb", closefd=True))
+        self._end = os.fstat(fd).st_size
+
+    def read(self, size: int | None = -1, /) -> bytes:
+        if size is not None and size > 0:
+            size = min(size, max(0, self._end - self.tell()))
+            if size == 0:
+                return b""
+        return super().read(size)
 
 
 def still_same(

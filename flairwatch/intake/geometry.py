@@ -150,8 +150,15 @@ def stack_geometry(
     ------
     InputRejected
         Single slice, duplicate positions, gaps or uneven spacing, slices not stacked along the
-        normal, or an invalid orientation.
+        normal, an invalid orientation, or a pixel spacing that is zero, negative or not a number.
     """
+    row_mm, col_mm = (float(v) for v in pixel_spacing)
+    if not (np.isfinite(row_mm) and np.isfinite(col_mm) and row_mm > 0 and col_mm > 0):
+        raise reject(
+            label,
+            f"Pixel Spacing {row_mm:g}\\{col_mm:g} mm is not two positive numbers",
+            "the header is damaged; send the series as the scanner made it",
+        )
     pos = np.asarray(positions, dtype=np.float64).reshape(-1, 3)
     n = pos.shape[0]
     if n < 2:

@@ -28,6 +28,7 @@ from pydicom.uid import UID
 
 from flairwatch.errors import InputRejected
 from flairwatch.intake.discover import declared_size_problem, not_image_reason
+from flairwatch.intake.fsafe import CappedReader
 from flairwatch.intake.geometry import (
     ORIENTATION_TOLERANCE,
     Frame,
@@ -153,16 +154,23 @@ def _check_fragments(ds: Dataset, label: str) -> None:
 
 def _pixels(ds: Dataset, label: str) -> npt.NDArray[np.generic]:
     """Decoded pixel array; :func:`_check_pixel_data` must have passed."""
+    # pydicom logs each failing decoder with a traceback; the refusal below says it in a line
+    pydicom_log = logging.getLogger("pydicom")
+    level = pydicom_log.level
+    pydicom_log.setLevel(logging.CRITICAL)
     try:
         arr = ds.pixel_array
     except Exception as exc:  # decoders raise assorted types; all mean the same to the user
-        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        lines = [line.strip() for line in str(exc).splitlines() if line.strip()]
+        first = " ".join(lines[:2]) if lines else type(exc).__name__
         syntax = UID(str(ds.file_meta.TransferSyntaxUID)).name
         raise reject(
             label,
-            f"pixel data cannot be decoded ({syntax}: {printable(first, 120)})",
+            f"pixel data cannot be decoded ({syntax}: {printable(first, 200)})",
             "the file is damaged or its compression unsupported; resend it uncompressed",
         ) from None
+    finally:
+        pydicom_log.setLevel(level)
     return np.asarray(arr)
 
 
@@ -255,8 +263,9 @@ def read_datasets(series: Series) -> list[Dataset]:
     for record in series.files:
         name = printable(record.path.name)
         try:
-            with open(record.path, "rb") as fh:
-                st = os.fstat(fh.fileno())
+            fd = os.open(record.path, os.O_RDONLY | getattr(os, "O_CLOEXEC", 0))
+            with CappedReader(fd) as fh:  # a damaged length never allocates what it declares
+                st = os.fstat(fd)
                 if (st.st_size, st.st_mtime_ns) != (record.size, record.mtime_ns):
                     raise reject(
                         label,
