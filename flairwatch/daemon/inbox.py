@@ -27,7 +27,7 @@ from pathlib import Path
 
 from flairwatch.intake.assemble import group_series
 from flairwatch.intake.discover import read_record, walk_folder
-from flairwatch.intake.fsafe import Seen
+from flairwatch.intake.fsafe import Note, Seen
 from flairwatch.ledger.store import TERMINAL_STATES, FileRow, JobState
 from flairwatch.records import FileRecord, Series
 
@@ -72,18 +72,25 @@ class InboxScanner:
         self._cache: dict[str, FileRecord] = {}
         self._ctimes: dict[str, int] = {}
         self._ids: dict[str, tuple[int, int]] = {}
+        self._said: set[tuple[int, str]] = set()  # conditions logged, while they last
 
     def forget(self, paths: Iterable[str]) -> None:
         for p in paths:
             self._cache.pop(p, None)
 
+    def _tell(self, said: set[tuple[int, str]]) -> None:
+        """Log each condition once when it appears (or changes), not at every rescan."""
+        for level, text in sorted(said - self._said):
+            log.log(level, "%s", text)
+        self._said = said
+
     def identity(self, path: str) -> tuple[int, int] | None:
         """(device, inode) of a file as the last scan saw it, or None if it did not see it."""
         return self._ids.get(path)
 
-    def _seen(self) -> Iterator[Seen]:
+    def _seen(self, note: Note) -> Iterator[Seen]:
         if self._candidates is None:
-            yield from walk_folder(self.root)
+            yield from walk_folder(self.root, note)
             return
         for path in self._candidates([self.root]):
             try:
@@ -95,8 +102,9 @@ class InboxScanner:
         found: dict[str, FileRecord] = {}
         ctimes: dict[str, int] = {}
         ids: dict[str, tuple[int, int]] = {}
+        said: set[tuple[int, str]] = set()
         read = 0
-        for seen in self._seen():
+        for seen in self._seen(lambda level, text: said.add((level, text))):
             key = str(seen.path)
             cached = self._cache.get(key)
             if cached is None or _stale(cached, seen, self._ctimes.get(key)):
@@ -111,6 +119,9 @@ class InboxScanner:
         gone = sorted(set(self._cache) - set(found))
         self._cache, self._ctimes, self._ids = found, ctimes, ids
         groups, unusable = group_series(found.values())
+        said.update((logging.INFO, f"{r.path}: {r.reason}") for r in unusable
+                    if r.reason and r.reason.startswith("duplicate"))  # fmt: skip
+        self._tell(said)
         return Scan(found, {s.key: s for s in groups}, unusable, read, gone)
 
 

@@ -66,7 +66,8 @@ def group_series(records: Iterable[FileRecord]) -> tuple[list[Series], list[File
         by_series[(study_uid, series_uid)].append(kept)
         for extra in copies[1:]:
             same = "same size" if extra.size == kept.size else f"{extra.size} vs {kept.size} bytes"
-            logger.info("%s duplicates instance in %s (%s)", extra.path, kept.path, same)
+            # debug only: a rescan groups again; the daemon logs each duplicate once per change
+            logger.debug("%s duplicates instance in %s (%s)", extra.path, kept.path, same)
             unusable.append(
                 FileRecord(
                     extra.path,

@@ -21,7 +21,7 @@ from pydicom.multival import MultiValue
 from pydicom.uid import UID
 
 from flairwatch.errors import InputRejected
-from flairwatch.intake.fsafe import CappedReader, FileChanged, Seen, open_file, walk
+from flairwatch.intake.fsafe import CappedReader, FileChanged, Note, Seen, log_note, open_file, walk
 from flairwatch.intake.limits import file_size_problem, image_size_problem
 from flairwatch.records import FileRecord, SeriesHeader
 
@@ -98,7 +98,7 @@ def iter_candidate_files(
             yield from _walk(root, listdir or os.listdir, lstat or os.lstat)
 
 
-def walk_folder(root: Path) -> Iterator[Seen]:
+def walk_folder(root: Path, note: Note = log_note) -> Iterator[Seen]:
     """Candidate files below the folder ``root`` with what a scan saw of each (no links followed).
 
     Raises
@@ -107,7 +107,7 @@ def walk_folder(root: Path) -> Iterator[Seen]:
         When ``root`` cannot be opened as a folder.
     """
     try:
-        yield from walk(root, is_ignored_name)
+        yield from walk(root, is_ignored_name, note)
     except OSError:
         raise InputRejected(f"{root}: no such folder, or not readable; check the path") from None
 

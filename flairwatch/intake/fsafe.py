@@ -20,6 +20,15 @@ from pathlib import Path
 
 log = logging.getLogger(__name__)
 
+# (logging level, one line) about something the walk passed by; a caller that scans again and
+# again collects these to log each only when it is new (see flairwatch.daemon.inbox)
+Note = Callable[[int, str], None]
+
+
+def log_note(level: int, message: str) -> None:
+    log.log(level, "%s", message)
+
+
 _DIR_FLAGS = os.O_RDONLY | os.O_DIRECTORY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0)
 _FILE_FLAGS = os.O_RDONLY | os.O_NOFOLLOW | getattr(os, "O_CLOEXEC", 0) | getattr(os, "O_NOCTTY", 0)
 
@@ -53,28 +62,29 @@ class FileChanged(OSError):
     """The file at a path is no longer the one the scan saw (swapped, rewritten, a link now)."""
 
 
-def walk(root: Path, skip: Callable[[str], bool]) -> Iterator[Seen]:
+def walk(root: Path, skip: Callable[[str], bool], note: Note = log_note) -> Iterator[Seen]:
     """Every regular file below ``root`` (a folder), depth first in sorted name order.
 
     Folders are opened relative to their parent's descriptor without following symbolic links,
     so a link (to outside the inbox, or a loop) is never entered, even one swapped in during
     the walk. ``root`` itself may be a link (an inbox on another disk is often one). Names for
     which ``skip`` is true are left out. Folders that vanish or cannot be opened are logged and
-    skipped; the error of opening ``root`` itself is raised.
+    skipped; the error of opening ``root`` itself is raised. What was passed by is told to
+    ``note`` (logged by default).
     """
     fd = os.open(root, os.O_RDONLY | os.O_DIRECTORY | getattr(os, "O_CLOEXEC", 0))
     try:
-        yield from _walk_fd(fd, root, skip)
+        yield from _walk_fd(fd, root, skip, note)
     finally:
         os.close(fd)
 
 
-def _walk_fd(fd: int, where: Path, skip: Callable[[str], bool]) -> Iterator[Seen]:
+def _walk_fd(fd: int, where: Path, skip: Callable[[str], bool], note: Note) -> Iterator[Seen]:
     try:
         with os.scandir(fd) as it:
             entries = sorted(((e.name, e) for e in it), key=lambda pair: pair[0])
     except OSError as exc:
-        log.warning("cannot list %s: %s", where, exc.strerror or exc)
+        note(logging.WARNING, f"cannot list {where}: {exc.strerror or exc}")
         return
     for name, entry in entries:
         if skip(name):
@@ -86,15 +96,15 @@ def _walk_fd(fd: int, where: Path, skip: Callable[[str], bool]) -> Iterator[Seen
             log.debug("skipping %s: %s", path, exc)
             continue
         if stat_mod.S_ISLNK(st.st_mode):
-            log.info("not following symbolic link %s", path)
+            note(logging.INFO, f"not following symbolic link {path}")
         elif stat_mod.S_ISDIR(st.st_mode):
             try:
                 sub = os.open(name, _DIR_FLAGS, dir_fd=fd)
             except OSError as exc:  # swapped for a link (ELOOP/ENOTDIR), vanished, no permission
-                log.info("not entering %s: %s", path, exc.strerror or exc)
+                note(logging.INFO, f"not entering {path}: {exc.strerror or exc}")
                 continue
             try:
-                yield from _walk_fd(sub, path, skip)
+                yield from _walk_fd(sub, path, skip, note)
             finally:
                 os.close(sub)
         elif stat_mod.S_ISREG(st.st_mode):
