@@ -112,7 +112,9 @@ def suite_cases(args: argparse.Namespace, say: Callable[[str], None]) -> list[Pa
     from flairwatch.shift.recipes import SUBSETS, suite_recipes
 
     names = tuple(args.subsets) if args.subsets else tuple(SUBSETS)
-    recipes = suite_recipes(names, args.series)
+    recipes = [
+        r for r in suite_recipes(names, args.series) if int(r.case_id[-2:]) >= args.first_series
+    ]
     if args.keep_suite:
         found = [
             args.suite / r.case_id
@@ -181,6 +183,12 @@ def parse(argv: Sequence[str] | None) -> argparse.Namespace:
     )
     ap.add_argument("--subsets", nargs="*", help="only these subsets (default: all)")
     ap.add_argument("--series", type=int, default=8, help="series per subset (the gate needs 8)")
+    ap.add_argument(
+        "--first-series",
+        type=int,
+        default=0,
+        help="skip the series numbered below this (split a long run)",
+    )
     ap.add_argument(
         "--keep-suite",
         action="store_true",
