@@ -9,8 +9,10 @@ reference library) following the DICOM standard, PS3.5 (encapsulation, section A
 from __future__ import annotations
 
 import os
+import shutil
 import subprocess
 import sys
+import tempfile
 import time
 import tracemalloc
 from pathlib import Path
@@ -26,7 +28,14 @@ from flairwatch.daemon.inbox import InboxScanner
 from flairwatch.daemon.workers import classify
 from flairwatch.errors import InputRejected
 from flairwatch.intake.discover import read_record
-from flairwatch.intake.fsafe import FileChanged, Seen, open_file, still_same, unlink_if_same
+from flairwatch.intake.fsafe import (
+    FileChanged,
+    Seen,
+    move_if_same,
+    open_file,
+    still_same,
+    unlink_if_same,
+)
 from flairwatch.intake.limits import MAX_SIDE
 from flairwatch.intake.load import load_series, volume_from_datasets
 from flairwatch.records import Series
@@ -241,3 +250,30 @@ def test_damaged_value_length_reads_only_what_is_there(tmp_path: Path) -> None:
     records = [read_record(p) for p in paths]
     with pytest.raises(InputRejected, match=r"pixel data is \d+ bytes, 8192 expected"):
         load_series(Series(header, tuple(r for r in records if r.header is not None)))
+
+
+@pytest.mark.parametrize("across", [False, True])
+def test_quarantine_move_only_of_the_file_scanned(tmp_path: Path, across: bool) -> None:
+    inbox = tmp_path / "inbox"
+    a, b = write_series(inbox / "s")[:2]
+    if across:  # another file system (tmpfs), where a rename cannot work and a copy is made
+        shm = Path("/dev/shm")
+        if not shm.is_dir() or os.stat(shm).st_dev == os.stat(tmp_path).st_dev:
+            pytest.skip("no second file system to move across")
+        target = Path(tempfile.mkdtemp(dir=shm))
+    else:
+        target = tmp_path / "quarantine"
+        target.mkdir()
+    try:
+        sa, sb = os.stat(a), os.stat(b)
+        original = a.read_bytes()
+        assert move_if_same(inbox, a, target / "a", sa.st_size, sa.st_mtime_ns,
+                            (sa.st_dev, sa.st_ino))  # fmt: skip
+        assert not a.exists() and (target / "a").read_bytes() == original
+        assert os.stat(target / "a").st_mtime_ns == sa.st_mtime_ns
+        b.write_bytes(b.read_bytes() + b"\0")  # rewritten after the scan: left where it is
+        assert not move_if_same(inbox, b, target / "b", sb.st_size, sb.st_mtime_ns, None)
+        assert b.exists() and not (target / "b").exists()
+    finally:
+        if across:
+            shutil.rmtree(target)

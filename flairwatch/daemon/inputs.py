@@ -11,13 +11,12 @@ is somebody's new data and stays where it is.
 from __future__ import annotations
 
 import logging
-import shutil
 import time
 from pathlib import Path
 
 from flairwatch.config import Config
 from flairwatch.daemon.inbox import InboxScanner
-from flairwatch.intake.fsafe import still_same, unlink_if_same
+from flairwatch.intake.fsafe import move_if_same, unlink_if_same
 from flairwatch.ledger.store import FileRow, JobRow, Ledger
 
 log = logging.getLogger("flairwatch.daemon.watch")
@@ -39,9 +38,6 @@ class InboxFiles:
         moved = []
         for f in self.ledger.revision_files(job.series_id):
             src = Path(f.path)
-            if not still_same(self.inbox, src, f.size, f.mtime_ns, self.scanner.identity(f.path)):
-                log.warning("%s changed or was replaced since it was scanned; left in place", src)
-                continue
             try:
                 dst = target / src.relative_to(self.inbox)
             except ValueError:
@@ -50,8 +46,12 @@ class InboxFiles:
                 dst.parent.mkdir(parents=True, exist_ok=True, mode=0o750)
                 if dst.exists():
                     dst = dst.with_name(f"{dst.name}.{job.id}")
-                shutil.move(src, dst)
-                moved.append(f.path)
+                ids = self.scanner.identity(f.path)
+                if move_if_same(self.inbox, src, dst, f.size, f.mtime_ns, ids):
+                    moved.append(f.path)
+                else:
+                    log.warning("%s changed or was replaced since it was scanned; left in place",
+                                src)  # fmt: skip
             except OSError as exc:
                 log.warning("could not move %s to quarantine: %s; left in place", src, exc)
         self.scanner.forget(moved)

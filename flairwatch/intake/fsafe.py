@@ -9,9 +9,11 @@ with ``O_NOFOLLOW``, every file likewise, and the opened file is compared with w
 
 from __future__ import annotations
 
+import errno
 import io
 import logging
 import os
+import shutil
 import stat as stat_mod
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
@@ -226,3 +228,41 @@ def unlink_if_same(
         log.warning("could not delete %s: %s", path, exc.strerror or exc)
         return False
     return True
+
+
+def move_if_same(
+    root: Path, path: Path, dst: Path, size: int, mtime_ns: int, ids: tuple[int, int] | None
+) -> bool:
+    """Move ``path`` to ``dst`` only if it is still the file seen (see :func:`still_same`).
+
+    The rename goes through the parent folder's descriptor, so no link on the way is followed;
+    across file systems the open file is copied (data, mode, times), then the source is deleted
+    if it is still the same. Returns whether it moved; raises ``OSError`` from the target side.
+    """
+    parts = _parts(root, path)
+    if parts is None:
+        return False
+    with _parent_fd(root, parts) as dfd:
+        try:
+            st = os.stat(parts[-1], dir_fd=dfd, follow_symlinks=False)
+        except FileNotFoundError:
+            return False
+        same = stat_mod.S_ISREG(st.st_mode) and (st.st_size, st.st_mtime_ns) == (size, mtime_ns)
+        if not same or (ids is not None and ids != (st.st_dev, st.st_ino)):
+            return False
+        try:
+            os.rename(parts[-1], dst, src_dir_fd=dfd)
+            return True
+        except OSError as exc:
+            if exc.errno != errno.EXDEV:
+                raise
+        seen = Seen.of(path, st)
+        fd = os.open(parts[-1], _FILE_FLAGS, dir_fd=dfd)
+        with os.fdopen(fd, "rb") as src:
+            if not seen.same(os.fstat(src.fileno())):
+                return False
+            with open(dst, "xb") as out:
+                shutil.copyfileobj(src, out, 1 << 20)
+            os.chmod(dst, stat_mod.S_IMODE(st.st_mode))
+            os.utime(dst, ns=(st.st_atime_ns, st.st_mtime_ns))
+    return unlink_if_same(root, path, size, mtime_ns, ids)
