@@ -186,6 +186,13 @@ def test_compressed_frames_checked_before_decoding(tmp_path: Path) -> None:
         volume_from_datasets([cut], "series x")
 
 
+def test_damaged_bits_allocated_refused_on_the_header(tmp_path: Path) -> None:
+    ds = slice_dataset((0.0, 0.0, 0.0), rows=4, columns=5)
+    ds.BitsAllocated = 0  # PS3.3 C.7.6.3.1.1: 1 or a multiple of 8
+    record = read_record(_write(ds, tmp_path / "bits.dcm"))
+    assert record.reason == "Bits Allocated is 0 (the header is damaged)"
+
+
 def test_worker_memory_limit_turns_a_big_allocation_into_a_clear_failure() -> None:
     code = (
         "import numpy as np\n"

@@ -311,7 +311,9 @@ def declared_size_problem(ds: Dataset) -> str | None:
         return None  # not an image: not_image_reason says so
     frames = _int(ds, "NumberOfFrames")
     bits = _int(ds, "BitsAllocated")
-    return image_size_problem(rows, cols, 1 if frames is None else frames, bits or 16)
+    return image_size_problem(
+        rows, cols, 1 if frames is None else frames, 16 if bits is None else bits
+    )
 
 
 def _looks_like_dicom(head: bytes) -> bool:
