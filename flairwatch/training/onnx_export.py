@@ -177,8 +177,13 @@ def write_manifest(
         "sha256": sha256,
         "intended_use": "research only; not for diagnosis or treatment; validate on your own "
         "scans before use",
-        "description": "2.5D U-Net (4 levels) segmenting white-matter hyperintensities and the "
-        "intracranial mask on axial FLAIR slices; trained on synthetic phantoms only",
+        "description": "2.5D U-Net (4 levels) segmenting white-matter hyperintensities, the "
+        + (
+            "intracranial mask and the lateral ventricles"
+            if "ventricles" in outputs
+            else "intracranial mask"
+        )
+        + " on axial FLAIR slices; trained on synthetic phantoms only",
         "input": {"name": "image", "layout": "NCHW", "channels": channels, "batch_size": 8},
         "grid": {
             "spacing_mm": list(grid.spacing_mm),
