@@ -193,6 +193,22 @@ def test_damaged_bits_allocated_refused_on_the_header(tmp_path: Path) -> None:
     assert record.reason == "Bits Allocated is 0 (the header is damaged)"
 
 
+def test_header_smaller_than_its_pixels_is_refused(tmp_path: Path) -> None:
+    # Rows/Columns rewritten to 1 x 1 over a 64 x 64 image: PS3.5 8.1.1 says the value holds
+    # Rows x Columns x Frames x Bits Allocated / 8 bytes (padded to even); a little more is let
+    # pass (pydicom's MR_small_padded.dcm), 4096 times more is a damaged header
+    paths = write_series(tmp_path / "a")
+    for path in paths:
+        ds = pydicom.dcmread(path)
+        ds.Rows = ds.Columns = 1
+        ds.save_as(path)
+    records = [read_record(p) for p in paths]
+    header = records[0].header
+    assert header is not None
+    with pytest.raises(InputRejected, match="8192 bytes, 2 expected for 1x1x1 at 16 bits"):
+        load_series(Series(header, tuple(records)))
+
+
 def test_worker_memory_limit_turns_a_big_allocation_into_a_clear_failure() -> None:
     code = (
         "import numpy as np\n"

@@ -118,6 +118,16 @@ def _check_pixel_data(ds: Dataset, label: str) -> None:
                 f"pixel data is {actual} bytes, {expected} expected (file cut short)",
                 "resend the series",
             )
+        # PS3.5 8.1.1 pads the value to an even length; some writers add a little more (pydicom
+        # ships such a file), but pixels far beyond what the header describes mean that Rows,
+        # Columns or Bits Allocated are wrong and the image would be read garbled
+        if actual - expected > max(1024, expected // 8):
+            raise reject(
+                label,
+                f"pixel data is {actual} bytes, {expected} expected for {rows}x{cols}x{frames} "
+                f"at {bits} bits (Rows, Columns or Bits Allocated do not match the pixels)",
+                "the header is damaged; resend the series",
+            )
 
 
 def _check_fragments(ds: Dataset, label: str) -> None:
