@@ -43,7 +43,7 @@ MASK_LEVEL = 0.5
 class Analysis:
     """What the model and post-processing made of one volume, on the series' own grid."""
 
-    probability: np.ndarray  # (I, J, K) float32 WMH probability 0..1
+    probability: np.ndarray  # (I, J, K) float32 WMH probability 0..1; 0 outside the head
     intracranial: np.ndarray | None  # (I, J, K) uint8, when the model gives it
     lesions: LesionResult
     intracranial_volume_ml: float | None
@@ -192,6 +192,11 @@ def analyse(
             if icv is not None:
                 vent &= icv != 0
             vent = vent.astype(np.uint8)
+        if icv is not None:
+            # outside the head the WMH probability is noise near zero (below 1e-4 on the
+            # phantoms); exact zeros there make the probability file 3-4 times smaller and its
+            # compression 2-3 times faster, and no lesion can lie there (restrict_to below).
+            np.copyto(wmh, np.float32(0.0), where=icv == 0)
     with timed(timings, "post_process"):
         lesions = threshold_and_clean(
             wmh,
