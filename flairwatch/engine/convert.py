@@ -12,6 +12,7 @@ way back.
 from __future__ import annotations
 
 import itertools
+from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
@@ -177,15 +178,7 @@ def _inplane_linear(
                     total += term
             out[k] = total
 
-    n_k = kji.shape[0]
-    parts = max(1, min(threads, n_k))
-    if parts == 1:
-        run(range(n_k))
-    else:
-        bounds = np.linspace(0, n_k, parts + 1).astype(int)
-        with ThreadPoolExecutor(max_workers=parts) as pool:
-            for done in [pool.submit(run, range(lo, hi)) for lo, hi in itertools.pairwise(bounds)]:
-                done.result()
+    _over_slices(run, kji.shape[0], threads)
     out[:, ~tj.inside] = 0.0
     out[:, :, ~ti.inside] = 0.0
     return out
@@ -285,15 +278,7 @@ def resample_mask_to_series(
             plane_out[mixed] = total.astype(np.float32) >= np.float32(level)
             out[k] = plane_out
 
-    n_k = kji.shape[0]
-    parts = max(1, min(threads, n_k))
-    if parts == 1:
-        run(range(n_k))
-    else:
-        bounds = np.linspace(0, n_k, parts + 1).astype(int)
-        with ThreadPoolExecutor(max_workers=parts) as pool:
-            for done in [pool.submit(run, range(lo, hi)) for lo, hi in itertools.pairwise(bounds)]:
-                done.result()
+    _over_slices(run, kji.shape[0], threads)
     return _unreorient(out.transpose(2, 1, 0), gmap)
 
 
@@ -312,3 +297,16 @@ def to_model_input(
     gmap = plan(volume, grid)
     slices = resample_to_model(normalise(volume.data, norm), gmap, threads=threads)
     return stack_channels(slices, channels), gmap
+
+
+def _over_slices(run: Callable[[range], None], n_k: int, threads: int) -> None:
+    """Call ``run`` over slices 0..n_k-1, split into up to ``threads`` contiguous ranges run in
+    threads (numpy's gathers and products release the GIL)."""
+    parts = max(1, min(threads, n_k))
+    if parts == 1:
+        run(range(n_k))
+        return
+    bounds = np.linspace(0, n_k, parts + 1).astype(int)
+    with ThreadPoolExecutor(max_workers=parts) as pool:
+        for done in [pool.submit(run, range(lo, hi)) for lo, hi in itertools.pairwise(bounds)]:
+            done.result()
