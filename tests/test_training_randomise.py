@@ -191,3 +191,24 @@ def test_lesion_free_cases_are_drawn_more_often() -> None:
     free.lesion_slices = np.array([], dtype=np.int64)
     w = hard_negative_weights([with_lesions, free], lesion_free_factor=2.0)
     np.testing.assert_allclose(w, [1 / 3, 2 / 3])
+
+
+def test_fade_lesions_reaches_the_target_ratio_and_leaves_other_tissue_alone() -> None:
+    # A 3-slice crop: white matter at 1.0 with mild noise, a 12-pixel-radius lesion at 1.8 x WM,
+    # grey matter at 1.1 elsewhere. The target is a ratio of medians, checked with numpy's median.
+    rng = np.random.default_rng(3)
+    yy, xx = np.mgrid[:64, :64]
+    lesion = (yy - 32) ** 2 + (xx - 32) ** 2 <= 12**2
+    tissue = np.full((3, 64, 64), rz.WM, np.uint8)
+    tissue[:, :, :8] = rz.GM
+    tissue[:, lesion] = rz.WMH
+    x = np.where(tissue == rz.WMH, 1.8, np.where(tissue == rz.GM, 1.1, 1.0)).astype(np.float32)
+    x = x + rng.normal(0, 0.02, x.shape).astype(np.float32)
+    out = rz.fade_lesions(x, tissue, 1.15)
+    wm = float(np.median(out[tissue == rz.WM]))
+    assert float(np.median(out[tissue == rz.WMH])) / wm == pytest.approx(1.15, abs=0.02)
+    far = (tissue != rz.WMH) & ~ndimage.binary_dilation(tissue == rz.WMH, iterations=4)
+    np.testing.assert_array_equal(out[far], x[far])  # only lesions (and their soft rims) change
+    assert np.all(out <= x + 1e-6)  # lesions only ever get fainter
+    # a target above the lesion's own contrast leaves the crop unchanged
+    np.testing.assert_array_equal(rz.fade_lesions(x, tissue, 2.5), x)

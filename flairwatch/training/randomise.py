@@ -62,6 +62,35 @@ def remap_tissues(
     return np.asarray(x * fmap, dtype=np.float32)
 
 
+def fade_lesions(
+    x: FloatArray, tissue: np.ndarray, target_ratio: float, smooth_px: float = 0.7
+) -> FloatArray:
+    """Scale each lesion's excess over white matter so that its median is ``target_ratio`` x WM.
+
+    Lesion voxels keep their texture and their soft partial-volume edges: a voxel's excess over
+    the crop's white-matter median is multiplied by one factor (at most 1, so lesions only ever
+    get fainter), blended by a smoothed lesion map. Faint lesions, barely brighter than white
+    matter, are what the phantom physics rarely makes and what a model must still find. ``x``
+    and ``tissue`` are (C, h, w); crops without enough white matter or lesion are returned as is.
+    """
+    wm = x[tissue == WM]
+    lesion_values = x[tissue == WMH]
+    if wm.size < 50 or lesion_values.size < 5:
+        return x
+    wm_level = float(np.median(wm))
+    excess = float(np.median(lesion_values)) - wm_level
+    if wm_level <= 0 or excess <= 0:
+        return x
+    k = min(1.0, (target_ratio - 1.0) * wm_level / excess)
+    weight = (tissue == WMH).astype(np.float32)
+    if smooth_px > 0:
+        sigma = (0.0,) * (weight.ndim - 2) + (smooth_px, smooth_px)
+        weight = ndimage.gaussian_filter(weight, sigma=sigma, mode="nearest")
+    factor = 1.0 - weight * np.float32(1.0 - k)
+    out = wm_level + (x - wm_level) * factor
+    return np.asarray(np.where(x > wm_level, out, x), dtype=np.float32)
+
+
 def gamma_curve(x: FloatArray, gamma: float, reference: float = 1.0) -> FloatArray:
     """``reference * (x / reference) ** gamma`` for x >= 0 (negatives clipped to 0): monotone."""
     base = np.maximum(x, 0.0) / np.float32(reference)
@@ -244,11 +273,14 @@ def randomise_intensities(
 ) -> FloatArray:
     """The intensity part of training randomisation for one crop stack (labels untouched).
 
-    Per-tissue remapping (when tissue labels are known), bright look-alikes, a contrast curve or
-    gamma, a bias field, blur, a global scale and noise, each with its own probability.
+    Per-tissue remapping and faint lesions (when tissue labels are known), bright look-alikes, a
+    contrast curve or gamma, a bias field, blur, a global scale and noise, each with its own
+    probability.
     """
     if tissue is not None and rng.random() < 0.8:
         x = remap_tissues(x, tissue, random_tissue_factors(rng))
+    if tissue is not None and rng.random() < 0.3:
+        x = fade_lesions(x, tissue, float(rng.uniform(1.08, 1.35)))
     if rng.random() < 0.5:
         x = bright_lookalikes(x, tissue, lesion, rng)
     r = rng.random()
