@@ -58,7 +58,7 @@ def test_open_sets_wal_and_full_sync(tmp_path: Path) -> None:
         # PRAGMA docs: synchronous FULL is 2
         assert led.query("PRAGMA journal_mode")[0][0] == "wal"
         assert led.query("PRAGMA synchronous")[0][0] == 2
-        assert led.query("PRAGMA user_version")[0][0] == SCHEMA_VERSION == 3
+        assert led.query("PRAGMA user_version")[0][0] == SCHEMA_VERSION == 4
     with Ledger.open(tmp_path / "state") as led:  # reopening keeps the schema
         assert led.state_counts() == {}
 
@@ -401,6 +401,17 @@ def _old_ledger(state: Path) -> Path:
     return path
 
 
+def _table_layout(led: Ledger) -> dict[str, tuple[object, ...]]:
+    names = [r[0] for r in led.query("SELECT name FROM sqlite_master WHERE type = 'table'")]
+    return {
+        n: (
+            tuple(led.query(f"PRAGMA table_info({n})")),
+            tuple(sorted(r[1] for r in led.query(f"PRAGMA index_list({n})"))),
+        )
+        for n in sorted(names)
+    }
+
+
 def test_schema_1_ledger_is_migrated_in_place(tmp_path: Path) -> None:
     path = _old_ledger(tmp_path / "state")
     # a reader cannot migrate: it says what to do instead of misreading the old state names
@@ -418,6 +429,12 @@ def test_schema_1_ledger_is_migrated_in_place(tmp_path: Path) -> None:
         assert led.query("SELECT mark, note FROM qc_marks") == [("rejected", "motion")]
         assert led.query("SELECT result_path, current FROM results") == [("/r/e1/v1", 1)]
         assert led.query("SELECT COUNT(*) FROM series")[0][0] == 4
+        migrated = _table_layout(led)
+    with Ledger.open(tmp_path / "fresh") as led:
+        # every migration step together gives exactly the tables a new ledger gets (SQLite's
+        # PRAGMA table_info and index_list describe them, so the comparison is SQLite's own view)
+        assert migrated == _table_layout(led)
+        assert {"outbox", "canary_runs"} <= set(migrated)
     with Ledger.open_readonly(tmp_path / "state") as led:  # now readable by status
         assert led.recent_outcomes(5).count("refused") == 1
     # the pre-migration copy is kept, untouched

@@ -10,6 +10,10 @@
 - ``results``: one per finished result folder and model version, with a ``current`` flag.
 - ``qc_marks`` and ``corrected_masks``: review outcomes attached to a result.
 - ``heartbeat``: one row the daemon rewrites every few seconds.
+- ``outbox``: one row per (result, DICOM node, object) to send: state, attempts, next try, the
+  last error; the sender works through it, and a daemon restart loses nothing.
+- ``canary_runs``: one row per self-check run of the fixed phantom series: the model and its
+  file hash, the measured Dice and volume, the expected volume and the outcome.
 
 Times are seconds since the epoch (REAL). A change to the tables bumps ``SCHEMA_VERSION`` and
 adds the statements that bring a ledger of the previous version up to it to ``MIGRATIONS``;
@@ -19,17 +23,55 @@ older ledger. ``SCHEMA`` always creates the newest version directly.
 
 from __future__ import annotations
 
-SCHEMA_VERSION = 3
+SCHEMA_VERSION = 4
 
 # version -> statements that turn a ledger of version - 1 into this version (run in order)
+OUTBOX_TABLE = """CREATE TABLE outbox (
+    id INTEGER PRIMARY KEY,
+    result_id INTEGER NOT NULL REFERENCES results(id),
+    node TEXT NOT NULL,
+    object TEXT NOT NULL,
+    path TEXT NOT NULL,
+    sop_uid TEXT,
+    state TEXT NOT NULL DEFAULT 'waiting' CHECK (state IN ('waiting','sent','given_up')),
+    attempts INTEGER NOT NULL DEFAULT 0,
+    not_before REAL NOT NULL DEFAULT 0,
+    last_error TEXT,
+    created REAL NOT NULL,
+    sent REAL,
+    UNIQUE (result_id, node, object)
+)"""
+
+CANARY_TABLE = """CREATE TABLE canary_runs (
+    id INTEGER PRIMARY KEY,
+    started REAL NOT NULL,
+    seconds REAL,
+    reason TEXT,
+    model_name TEXT,
+    model_version TEXT,
+    model_sha256 TEXT,
+    dice REAL,
+    volume_ml REAL,
+    expected_volume_ml REAL,
+    outcome TEXT NOT NULL CHECK (outcome IN ('passed','drifted','baseline','failed')),
+    detail TEXT
+)"""
+
 MIGRATIONS: dict[int, tuple[str, ...]] = {
     # 0.2.0: the job state for unusable input is 'refused' ('rejected' stays a QC decision only)
     2: ("UPDATE jobs SET state = 'refused' WHERE state = 'rejected'",),
     # 0.2.0: a running job names its owner's run token and lock file (ledger/owners.py)
     3: ("ALTER TABLE jobs ADD COLUMN owner TEXT", "ALTER TABLE jobs ADD COLUMN owner_lock TEXT"),
+    # 0.2.0: results sent to DICOM nodes, and the nightly self-check's runs
+    4: (
+        OUTBOX_TABLE,
+        "CREATE INDEX outbox_state ON outbox (state, not_before)",
+        CANARY_TABLE,
+    ),
 }
 
-SCHEMA = """
+SCHEMA = (
+    """
 CREATE TABLE series (
     id INTEGER PRIMARY KEY,
     study_uid TEXT NOT NULL,
@@ -125,3 +167,8 @@ CREATE TABLE heartbeat (
     inbox TEXT
 );
 """
+    + OUTBOX_TABLE
+    + ";\nCREATE INDEX outbox_state ON outbox (state, not_before);\n"
+    + CANARY_TABLE
+    + ";\n"
+)
