@@ -34,6 +34,8 @@ LAYERS = (
     "engine",
     "ledger",
     "research",
+    "network",
+    "review",
     "daemon",
     "cli",
 )
