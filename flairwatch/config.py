@@ -67,6 +67,30 @@ def cpus_available() -> int:
 
 
 @dataclass(frozen=True)
+class CanarySettings:
+    """``canary:``: the daily self-check (:mod:`flairwatch.research.canary`).
+
+    ``time`` is the local wall-clock time "HH:MM" of the daily run; ``min_dice`` the lowest
+    Dice with the expected mask that passes; ``max_volume_change_percent`` the largest change
+    of the WMH volume from the expected one, in % of the expected volume, that passes.
+    """
+
+    enabled: bool = True
+    time: str = "03:00"
+    min_dice: float = 0.999
+    max_volume_change_percent: float = 0.5
+
+
+@dataclass(frozen=True)
+class LongitudinalSettings:
+    """``longitudinal:``: ``export --longitudinal`` flags a later scan whose WMH volume drops
+    by more than ``drop_percent`` % of the previous scan's and by more than ``drop_ml`` mL."""
+
+    drop_percent: float = 20.0
+    drop_ml: float = 1.0
+
+
+@dataclass(frozen=True)
 class Identifiers:
     """What summaries and exports do with each identifier: keep, pseudonymise or drop."""
 
@@ -99,6 +123,8 @@ class Config:
     overdue_seconds: float = DEFAULT_OVERDUE_SECONDS  # status: a job running longer than
     overdue_factor: float = DEFAULT_OVERDUE_FACTOR  # max(these s, factor x median) is a problem
     worker_memory_mb: int = DEFAULT_WORKER_MEMORY_MB  # address-space cap per worker; 0 = none
+    canary: CanarySettings = field(default_factory=CanarySettings)
+    longitudinal: LongitudinalSettings = field(default_factory=LongitudinalSettings)
 
     def threads_per_worker(self) -> int:
         if self.threads > 0:
@@ -141,6 +167,48 @@ def _identifiers(raw: Any) -> Identifiers:
                 f"config key 'identifiers.{k}' must be one of {', '.join(IDENTIFIER_ACTIONS)}, got {v!r}"
             )
     return Identifiers(**dict(raw))
+
+
+def _section(key: str, raw: Any, names: tuple[str, ...]) -> Mapping[str, Any]:
+    if raw is None:
+        return {}
+    if not isinstance(raw, Mapping):
+        raise ConfigInvalid(f"config key '{key}' must be a mapping like {{{names[0]}: ...}}")
+    unknown = set(raw) - set(names)
+    if unknown:
+        raise ConfigInvalid(
+            f"config key '{key}' has unknown entries {sorted(unknown)}; use {', '.join(names)}"
+        )
+    return raw
+
+
+def _canary(raw: Any) -> CanarySettings:
+    given = _section("canary", raw, ("enabled", "time", "min_dice", "max_volume_change_percent"))
+    values: dict[str, Any] = {}
+    if "enabled" in given:
+        values["enabled"] = _flag("canary.enabled", given["enabled"])
+    if "time" in given:
+        hh, sep, mm = str(given["time"]).partition(":")
+        if not (sep and hh.isdigit() and mm.isdigit() and int(hh) < 24 and int(mm) < 60):
+            raise ConfigInvalid(
+                "config key 'canary.time' must be a local time HH:MM in quotes, such as "
+                f'"03:00", got {given["time"]!r}'
+            )
+        values["time"] = f"{int(hh):02d}:{int(mm):02d}"
+    if "min_dice" in given:
+        values["min_dice"] = _number("canary.min_dice", given["min_dice"], lo=0.0, hi=1.0)
+    if "max_volume_change_percent" in given:
+        values["max_volume_change_percent"] = _number(
+            "canary.max_volume_change_percent", given["max_volume_change_percent"], lo=0.0
+        )
+    return CanarySettings(**values)
+
+
+def _longitudinal(raw: Any) -> LongitudinalSettings:
+    given = _section("longitudinal", raw, ("drop_percent", "drop_ml"))
+    return LongitudinalSettings(
+        **{k: _number(f"longitudinal.{k}", v, lo=0.0) for k, v in given.items()}
+    )
 
 
 def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None) -> Config:
@@ -202,6 +270,10 @@ def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None)
         values["select"] = rules_from_mapping(raw["select"])
     if "identifiers" in raw:
         values["identifiers"] = _identifiers(raw["identifiers"])
+    if "canary" in raw:
+        values["canary"] = _canary(raw["canary"])
+    if "longitudinal" in raw:
+        values["longitudinal"] = _longitudinal(raw["longitudinal"])
     return Config(**values)
 
 

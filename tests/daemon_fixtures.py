@@ -74,6 +74,8 @@ def write_config(
         "workers": workers,
         "threads": 1,
         "model": str(model),
+        # the daily self-check has its own tests (test_canary.py); here it would only add CPU
+        "canary": {"enabled": False},
         **extra,
     }
     path = tmp / "flairwatch.yaml"

@@ -82,6 +82,11 @@ COMMANDS: tuple[Command, ...] = (
         "flairwatch.cli.export",
     ),
     Command(
+        "canary",
+        "run the self-check once: the shipped phantom through the pipeline, compared (exit 1 on drift)",
+        "flairwatch.cli.canary",
+    ),
+    Command(
         "qc",
         "review results: mark accepted/rejected, attach corrected masks, build the gallery",
         "flairwatch.cli.qc",

@@ -8,7 +8,8 @@
   ``--stuck-after`` while nothing started or finished;
 - the latest ``--failure-run`` processing jobs did not all fail;
 - no series has been running longer than max(``overdue_seconds``, ``overdue_factor`` times the
-  median processing time of the last 50 series done): a hung worker or a lost job shows here.
+  median processing time of the last 50 series done): a hung worker or a lost job shows here;
+- the latest self-check (:mod:`flairwatch.research.canary`) did not drift or fail.
 
 ``backup`` copies the ledger with SQLite's online backup API, safe while the daemon writes.
 """
@@ -45,6 +46,7 @@ class Report:
     errors: list[dict[str, Any]] = field(default_factory=list)
     problems: list[str] = field(default_factory=list)
     running_limit_s: float | None = None  # a series running longer is a problem
+    canary: tuple[str, str | None, float] | None = None  # latest self-check: outcome, detail, when
 
     @property
     def healthy(self) -> bool:
@@ -70,10 +72,12 @@ def problems(
     failure_run: int,
     running: Sequence[tuple[str | None, float]] = (),
     running_limit_s: float = math.inf,
+    canary: tuple[str, str | None, float] | None = None,
 ) -> list[str]:
     """Health problems from ledger facts (pure). An empty list means healthy.
 
-    ``running`` holds (series key, seconds running) of every running job.
+    ``running`` holds (series key, seconds running) of every running job; ``canary`` the latest
+    self-check's (outcome, detail, start time), None when none ran.
     """
     found = []
     if daemon is None:
@@ -105,6 +109,12 @@ def problems(
                 f"series {key} has been running for {age / 60:.0f} min, longer than the "
                 f"{running_limit_s / 60:.0f} min limit: a worker may be stuck; see the daemon's log"
             )
+    if canary is not None and canary[0] in ("drifted", "failed"):
+        what = "drifted" if canary[0] == "drifted" else "could not run"
+        found.append(
+            f"the self-check of {_when(canary[2])} {what}: {canary[1]}; results may differ from "
+            "earlier ones until this is explained (README, 'Self-check')"
+        )
     return found
 
 
@@ -132,6 +142,14 @@ def gather(
     done, mean = ledger.done_since(now - 3600.0)
     daemon = ledger.heartbeat()
     limit = running_limit(ledger.recent_seconds(RECENT_SERIES), overdue_s, overdue_factor)
+    last_canary = ledger.query(
+        "SELECT outcome, detail, started FROM canary_runs ORDER BY id DESC LIMIT 1"
+    )
+    canary = (
+        (str(last_canary[0][0]), last_canary[0][1], float(last_canary[0][2]))
+        if last_canary
+        else None
+    )
     errors = [
         {"finished": t, "state": st, "series": key, "revision": rev, "error": err}
         for t, st, key, rev, err in ledger.recent_errors(RECENT_ERRORS)
@@ -147,8 +165,11 @@ def gather(
         failure_run=failure_run,
         running=[(key, now - started) for key, started in ledger.running_jobs()],
         running_limit_s=limit,
+        canary=canary,
     )
-    return Report(now, daemon, counts, waiting, oldest_wait, done, mean, errors, found, limit)
+    return Report(
+        now, daemon, counts, waiting, oldest_wait, done, mean, errors, found, limit, canary
+    )
 
 
 def _when(t: float | None) -> str:
@@ -173,6 +194,9 @@ def render(report: Report) -> str:
     lines.append(f"queue: {report.queue_waiting} ready to run{wait}")
     mean = "" if report.mean_seconds is None else f" (mean {report.mean_seconds:.1f} s each)"
     lines.append(f"throughput: {report.done_last_hour} series done in the last hour{mean}")
+    if report.canary is not None:
+        outcome, detail, started = report.canary
+        lines.append(f"self-check: {outcome} at {_when(started)}: {detail}")
     if report.errors:
         lines.append("last errors:")
         for e in report.errors:

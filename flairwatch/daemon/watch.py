@@ -12,7 +12,7 @@ worker processes only compute. The loop:
    back-off when transient, recorded for good otherwise);
 4. every few seconds (:meth:`Daemon.supervise`): heartbeat row, watcher health check, a paused
    dispatch resumed when disk space is back, and any running job that no live owner holds put
-   back in the queue.
+   back in the queue; the self-check (:mod:`flairwatch.daemon.canary`) started when due.
 
 The daemon owns its jobs through the state folder's lock (:mod:`flairwatch.ledger.owners`), not
 through process ids. After ``kill -9`` at any moment a restart (:mod:`flairwatch.daemon.reconcile`)
@@ -35,6 +35,7 @@ from typing import Any
 
 from flairwatch import keys
 from flairwatch.config import Config
+from flairwatch.daemon.canary import CanaryRunner
 from flairwatch.daemon.dispatch import Dispatcher
 from flairwatch.daemon.inbox import InboxScanner
 from flairwatch.daemon.inputs import InboxFiles
@@ -117,6 +118,10 @@ class Daemon:
         self.files = InboxFiles(cfg, ledger, InboxScanner(self.inbox))
         self.intake = Intake(cfg, ledger, secret, self.files, once=once)
         self.jobs = Dispatcher(cfg, ledger, self.files, self.tuning)
+        # the self-check: at start-up and daily, in its own low-priority process (not in --once)
+        self.canary = (
+            CanaryRunner(cfg, ledger) if cfg.canary.enabled and cfg.state and not once else None
+        )
 
     @property
     def model(self) -> dict[str, Any]:
@@ -157,6 +162,8 @@ class Daemon:
         finally:
             if observer is not None:
                 observer.stop()
+            if self.canary is not None:
+                self.canary.stop()
             pool.stop(at_once=self.signals.count >= 2)
             self.ledger.beat(os.getpid(), "stopped", self.clock())
 
@@ -222,6 +229,8 @@ class Daemon:
         if observer is not None:
             observer.check()
         self.jobs.check_space()
+        if self.canary is not None and not pool.closing:
+            self.canary.tick()
         held = {s.job_id for s in pool.busy() if s.job_id is not None}
         for job_id in self.ledger.requeue_orphans(now, held=held):
             row = self.ledger.series(self.ledger.job(job_id).series_id)
