@@ -100,6 +100,16 @@ class Identifiers:
 
 
 @dataclass(frozen=True)
+class OutputSettings:
+    """``outputs:``: DICOM SEG / SR per result; ``identifiers``: ``copy`` the scan's patient
+    data into them (archives file them with the scan) or ``follow`` the ``identifiers`` key."""
+
+    segmentation: bool = True
+    measurements: bool = True  # the SR references the SEG, so it needs segmentation
+    identifiers: str = "copy"
+
+
+@dataclass(frozen=True)
 class Config:
     inbox: Path | None = None
     results: Path | None = None
@@ -117,6 +127,7 @@ class Config:
     periventricular_mm: float = DEFAULT_PERIVENTRICULAR_MM
     select: SelectRules = field(default_factory=lambda: rules_from_mapping(None))
     identifiers: Identifiers = field(default_factory=Identifiers)
+    outputs: OutputSettings = field(default_factory=OutputSettings)
     delete_inbox_files: bool = False
     keep_versions: int = 0  # 0 = keep every model version's results
     retry_seconds: float = DEFAULT_RETRY_SECONDS  # first retry after a failure; then doubled
@@ -167,6 +178,23 @@ def _identifiers(raw: Any) -> Identifiers:
                 f"config key 'identifiers.{k}' must be one of {', '.join(IDENTIFIER_ACTIONS)}, got {v!r}"
             )
     return Identifiers(**dict(raw))
+
+
+def _outputs(raw: Any) -> OutputSettings:
+    keys = ("segmentation", "measurements", "identifiers")
+    if raw is None:
+        return OutputSettings()
+    if not isinstance(raw, Mapping) or set(raw) - set(keys):
+        raise ConfigInvalid(f"config key 'outputs' must be a mapping of {', '.join(keys)}")
+    out = OutputSettings(**{k: _flag(f"outputs.{k}", raw[k]) for k in keys[:2] if k in raw},
+                         identifiers=raw.get("identifiers", "copy"))  # fmt: skip
+    if out.identifiers not in ("copy", "follow"):
+        raise ConfigInvalid(f"config key 'outputs.identifiers' must be copy or follow, got "
+                            f"{out.identifiers!r}")  # fmt: skip
+    if out.measurements and not out.segmentation:
+        raise ConfigInvalid("config key 'outputs.measurements' needs 'outputs.segmentation' "
+                            "(the SR references the SEG); turn both off or keep segmentation")  # fmt: skip
+    return out
 
 
 def _section(key: str, raw: Any, names: tuple[str, ...]) -> Mapping[str, Any]:
@@ -270,6 +298,8 @@ def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None)
         values["select"] = rules_from_mapping(raw["select"])
     if "identifiers" in raw:
         values["identifiers"] = _identifiers(raw["identifiers"])
+    if "outputs" in raw:
+        values["outputs"] = _outputs(raw["outputs"])
     if "canary" in raw:
         values["canary"] = _canary(raw["canary"])
     if "longitudinal" in raw:

@@ -20,17 +20,27 @@ from __future__ import annotations
 import csv
 import gzip
 import io
+import logging
 import time
 from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import nibabel as nib
 import numpy as np
+from pydicom.dataset import Dataset
 
 from flairwatch import keys
-from flairwatch.config import Identifiers
+from flairwatch.config import Identifiers, OutputSettings
 from flairwatch.engine.analysis import Analysis
+from flairwatch.engine.dicom_seg import (
+    SEG_FILE,
+    NoSegmentation,
+    build_segmentation,
+    segment_numbers,
+)
+from flairwatch.engine.dicom_sr import SR_FILE, Numbers, build_report
 from flairwatch.engine.postprocess import LESION_COLUMNS, lesion_rows
 from flairwatch.engine.qc_image import qc_montage, save_png
 from flairwatch.notice import BANNER, NOTICE_FILE, NOTICE_TEXT
@@ -43,6 +53,7 @@ VENTRICLE_FILE = "ventricle_mask.nii.gz"
 LESIONS_FILE = "lesions.csv"
 QC_FILE = "qc.png"
 MASK_GZIP_LEVEL = 6
+log = logging.getLogger(__name__)
 PROBABILITY_GZIP_LEVEL = 1
 # files smaller than this are compressed as one gzip member even when threads are offered
 _SPLIT_BYTES = 4 << 20
@@ -177,6 +188,99 @@ def write_files(
         timings["write_qc"] = round(time.perf_counter() - start, 3)
         probability.result()
     return timings
+
+
+@dataclass(frozen=True)
+class DicomJob:
+    """What the DICOM SEG and SR of one result need besides the analysis (see write_dicom)."""
+
+    headers: list[Dataset]  # the source images' headers; empty for NIfTI input
+    settings: OutputSettings
+    identifiers: Identifiers
+    secret: bytes
+    model_name: str
+    model_version: str
+    model_sha256: str
+    software_version: str
+
+
+def _follow_identifiers(ds: Dataset, job: DicomJob) -> None:
+    """Apply the ``identifiers`` setting to a SEG or SR (``outputs.identifiers: follow``)."""
+    ids = job.identifiers
+    name = str(ds.get("PatientName") or "") or None
+    ds.PatientID = _identify(str(ds.get("PatientID") or "") or None, ids.patient_id, job.secret)
+    ds.PatientName = _identify(name, ids.patient_name, job.secret) or ""
+    ds.PatientID = ds.PatientID or ""
+    if ids.dates == "drop":  # Type 2 in PS3.3 C.7.1.1 and C.7.2.1: present, empty
+        ds.PatientBirthDate = ds.StudyDate = ds.StudyTime = ""
+
+
+def write_dicom(
+    folder: Path, volume: Volume, analysis: Analysis, job: DicomJob
+) -> tuple[dict[str, Any], dict[str, float]]:
+    """Write ``segmentation.dcm`` and ``measurements.dcm`` as ``job.settings`` asks.
+
+    Returns the summary's ``dicom`` facts (each object ``written``, ``off`` or ``skipped``, and
+    why it was skipped) and the seconds per file (``write_segmentation``, ``write_measurements``).
+    A source that cannot carry a SEG (NIfTI input, no Frame of Reference, masks off the source
+    grid) or that highdicom refuses is skipped with a logged reason; the NIfTI result stands.
+    """
+    on = job.settings
+    facts: dict[str, Any] = {
+        "segmentation": "on" if on.segmentation else "off",
+        "measurements": "on" if on.measurements else "off",
+        "skipped_reason": None,
+    }
+    timings: dict[str, float] = {}
+    if not on.segmentation:
+        return facts, timings
+    masks = {"wmh": analysis.lesions.mask}
+    if analysis.intracranial is not None:
+        masks["intracranial"] = analysis.intracranial
+    if analysis.ventricles is not None:
+        masks["ventricles"] = analysis.ventricles
+    algorithm = {"algorithm_name": job.model_name, "algorithm_version": job.model_version}
+    try:
+        start = time.perf_counter()
+        seg = build_segmentation(
+            job.headers, masks, volume.affine_lps, **algorithm,
+            software_version=job.software_version, device_serial=job.model_sha256[:16],
+        )  # fmt: skip
+        if on.identifiers == "follow":
+            _follow_identifiers(seg, job)
+        seg.save_as(folder / SEG_FILE)
+        timings["write_segmentation"] = round(time.perf_counter() - start, 3)
+        facts["segmentation"] = "written"
+        if on.measurements:
+            start = time.perf_counter()
+            split = analysis.split
+            numbers = Numbers(
+                wmh_ml=analysis.lesions.total_volume_ml,
+                lesion_count=len(analysis.lesions.lesions),
+                intracranial_ml=analysis.intracranial_volume_ml,
+                ventricles_ml=None if split is None else split.ventricle_volume_ml,
+                periventricular_ml=None if split is None else split.periventricular_volume_ml,
+                deep_ml=None if split is None else split.deep_volume_ml,
+            )
+            segments = segment_numbers(list(masks))
+            sr = build_report(
+                seg, job.headers, numbers, segments, **algorithm,
+                software_version=job.software_version,
+            )  # fmt: skip
+            if on.identifiers == "follow":
+                _follow_identifiers(sr, job)
+            sr.save_as(folder / SR_FILE)
+            timings["write_measurements"] = round(time.perf_counter() - start, 3)
+            facts["measurements"] = "written"
+    except (NoSegmentation, ValueError, TypeError, AttributeError, KeyError) as exc:
+        # highdicom raises these for headers it cannot use; the NIfTI result is still good
+        reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        for name in (SEG_FILE, SR_FILE):
+            (folder / name).unlink(missing_ok=True)
+        facts.update(skipped_reason=reason[:200])
+        facts.update({k: "skipped" for k in ("segmentation", "measurements") if facts[k] != "off"})
+        log.warning("DICOM SEG/SR not written: %s", reason[:200])
+    return facts, timings
 
 
 def summary_facts(analysis: Analysis, volume: Volume) -> dict[str, Any]:

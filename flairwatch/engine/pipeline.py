@@ -17,10 +17,14 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from pydicom.dataset import Dataset
+
 from flairwatch import __version__, keys
 from flairwatch.config import Config
 from flairwatch.engine import results
 from flairwatch.engine.analysis import Analysis, analyse, timed
+from flairwatch.engine.dicom_seg import SEG_FILE
+from flairwatch.engine.dicom_sr import SR_FILE
 from flairwatch.engine.infer import Segmenter
 from flairwatch.engine.manifest import ModelManifest, load_manifest
 from flairwatch.engine.models import manifest_path
@@ -30,11 +34,13 @@ from flairwatch.engine.outputs import (
     PROBABILITY_FILE,
     QC_FILE,
     VENTRICLE_FILE,
+    DicomJob,
     header_facts,
     summary_facts,
+    write_dicom,
     write_files,
 )
-from flairwatch.intake.load import load_nifti, load_series
+from flairwatch.intake.load import load_nifti, read_datasets, series_label, volume_from_datasets
 from flairwatch.notice import BANNER
 from flairwatch.records import Series, SeriesHeader
 from flairwatch.volume import Volume
@@ -164,15 +170,25 @@ class Engine:
     ) -> Outcome:
         """Load one DICOM series and write its result folder (or adopt a complete one)."""
         source = source_of_series(series)
-        return self._run(lambda: load_series(series), source, results_root, secret, revision)
+
+        def read() -> tuple[Volume, list[Dataset]]:
+            datasets = read_datasets(series)
+            volume = volume_from_datasets(datasets, series_label(series.header))
+            for ds in datasets:  # the SEG and SR need the headers only
+                for keyword in ("PixelData", "FloatPixelData", "DoubleFloatPixelData"):
+                    if keyword in ds:
+                        delattr(ds, keyword)
+            return volume, datasets
+
+        return self._run(read, source, results_root, secret, revision)
 
     def process_nifti(self, path: Path, results_root: Path, *, secret: bytes) -> Outcome:
         source = source_of_nifti(path)
-        return self._run(lambda: load_nifti(path), source, results_root, secret, 1)
+        return self._run(lambda: (load_nifti(path), []), source, results_root, secret, 1)
 
     def _run(
         self,
-        read: Callable[[], Volume],
+        read: Callable[[], tuple[Volume, list[Dataset]]],
         source: Source,
         results_root: Path,
         secret: bytes,
@@ -191,7 +207,7 @@ class Engine:
                         source.label, final, aside.name)  # fmt: skip
         timings: dict[str, float] = {}
         with timed(timings, "load"):
-            volume = read()
+            volume, headers = read()
         analysis = self.analyse(volume)
         timings.update(analysis.timings_s)
 
@@ -200,13 +216,25 @@ class Engine:
                 title = self._title(final, analysis)
                 threads = self.segmenter.threads
                 timings.update(write_files(tmp, volume, analysis, title, threads=threads))
+                dicom, dicom_timings = write_dicom(
+                    tmp, volume, analysis, self._dicom_job(headers, secret)
+                )
+                timings.update(dicom_timings)
             summary = self._summary(source, volume, analysis, final, revision, secret, timings)
-            return summary | {"fingerprint": fingerprint}
+            for key, name in (("segmentation", SEG_FILE), ("measurements", SR_FILE)):
+                if dicom[key] == "written":
+                    summary["files"][key] = name
+            return summary | {"fingerprint": fingerprint, "dicom": dicom}
 
         folder, summary, adopted = results.build_version_folder(final, fill)
         if not adopted and results.current_version(folder.parent) is None:
             results.set_current(folder.parent, folder.name)
         return Outcome(folder, summary, adopted)
+
+    def _dicom_job(self, headers: list[Dataset], secret: bytes) -> DicomJob:
+        m = self.manifest
+        return DicomJob(headers, self.cfg.outputs, self.cfg.identifiers, secret,
+                        m.name, m.version, m.sha256, __version__)  # fmt: skip
 
     def _title(self, final: Path, analysis: Analysis) -> list[str]:
         """The QC image's title lines: series key, model, volumes (never patient names)."""
