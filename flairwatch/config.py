@@ -110,6 +110,24 @@ class OutputSettings:
 
 
 @dataclass(frozen=True)
+class ReviewSettings:
+    """``review:``: where ``flairwatch review`` listens (README, "Reviewing results in the browser").
+
+    ``port`` 0 takes a free port at start. Off the loopback address, TLS (``tls_cert`` and
+    ``tls_key``, PEM files) is required; ``password`` lets reviewers log in without the token.
+    """
+
+    address: str = "127.0.0.1"
+    port: int = 0
+    password: str | None = None
+    tls_cert: Path | None = None
+    tls_key: Path | None = None
+
+
+REVIEW_KEYS = ("address", "port", "password", "tls_cert", "tls_key")
+
+
+@dataclass(frozen=True)
 class Config:
     inbox: Path | None = None
     results: Path | None = None
@@ -134,6 +152,7 @@ class Config:
     overdue_seconds: float = DEFAULT_OVERDUE_SECONDS  # status: a job running longer than
     overdue_factor: float = DEFAULT_OVERDUE_FACTOR  # max(these s, factor x median) is a problem
     worker_memory_mb: int = DEFAULT_WORKER_MEMORY_MB  # address-space cap per worker; 0 = none
+    review: ReviewSettings = field(default_factory=ReviewSettings)
     canary: CanarySettings = field(default_factory=CanarySettings)
     longitudinal: LongitudinalSettings = field(default_factory=LongitudinalSettings)
 
@@ -239,6 +258,44 @@ def _longitudinal(raw: Any) -> LongitudinalSettings:
     )
 
 
+def _review(raw: Any, base_dir: Path | None) -> ReviewSettings:
+    if raw is None:
+        return ReviewSettings()
+    if not isinstance(raw, Mapping):
+        raise ConfigInvalid("config key 'review' must be a mapping like {address: 127.0.0.1}")
+    unknown = set(raw) - set(REVIEW_KEYS)
+    if unknown:
+        raise ConfigInvalid(
+            f"config key 'review' has unknown entries {sorted(unknown)}; use {', '.join(REVIEW_KEYS)}"
+        )
+    values: dict[str, Any] = {}
+    for key in ("address", "password"):
+        v = raw.get(key)
+        if v in (None, ""):
+            continue
+        if not isinstance(v, str):
+            raise ConfigInvalid(f"config key 'review.{key}' must be text, got a {type(v).__name__}")
+        values[key] = v
+    port = raw.get("port")
+    if port not in (None, ""):
+        if isinstance(port, bool) or not isinstance(port, int) or not 0 <= port <= 65535:
+            raise ConfigInvalid(f"config key 'review.port' must be 0 to 65535, got {port!r}")
+        values["port"] = port
+    for key in ("tls_cert", "tls_key"):
+        v = raw.get(key)
+        if v in (None, ""):
+            continue
+        if not isinstance(v, str):
+            raise ConfigInvalid(f"config key 'review.{key}' must be a path, got {v!r}")
+        p = Path(v).expanduser()
+        values[key] = base_dir / p if base_dir is not None and not p.is_absolute() else p
+    if ("tls_cert" in values) != ("tls_key" in values):
+        raise ConfigInvalid(
+            "config keys 'review.tls_cert' and 'review.tls_key' go together; set both"
+        )
+    return ReviewSettings(**values)
+
+
 def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None) -> Config:
     """Validate a parsed YAML mapping; relative paths are taken relative to ``base_dir``."""
     known = {f.name for f in fields(Config)}
@@ -298,6 +355,8 @@ def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None)
         values["select"] = rules_from_mapping(raw["select"])
     if "identifiers" in raw:
         values["identifiers"] = _identifiers(raw["identifiers"])
+    if "review" in raw:
+        values["review"] = _review(raw["review"], base_dir)
     if "outputs" in raw:
         values["outputs"] = _outputs(raw["outputs"])
     if "canary" in raw:

@@ -92,6 +92,11 @@ COMMANDS: tuple[Command, ...] = (
         "flairwatch.cli.qc",
     ),
     Command(
+        "review",
+        "review results in a browser: queue, slice viewer, accept/reject by key (review extra)",
+        "flairwatch.cli.review",
+    ),
+    Command(
         "models",
         "list the models flairwatch can find: name, version, file hash, where, intended use",
         "flairwatch.cli.models",
