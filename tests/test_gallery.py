@@ -100,7 +100,8 @@ def test_pages_are_static_escaped_and_link_real_images(site: tuple[Archive, Path
     a, b, c = arc.entries
     names = sorted(p.name for p in out.iterdir())
     study1, study2 = a.outcome.summary["study_key"], c.outcome.summary["study_key"]
-    assert names == sorted(["index.html", f"study-{study1}.html", f"study-{study2}.html"])
+    people = sorted({f"participant-{e.outcome.summary['subject_key']}.html" for e in arc.entries})
+    assert names == sorted(["index.html", f"study-{study1}.html", f"study-{study2}.html", *people])
     page = (out / f"study-{study1}.html").read_text(encoding="utf-8")
     parsed = _parse(page)
     assert "b" not in parsed.tags, "a note's markup must be shown as text, not parsed"
@@ -164,7 +165,8 @@ def test_refresh_after_a_new_series_rewrites_only_its_study(site: tuple[Archive,
     with arc.ledger() as ledger:
         written = refresh_study(ledger, out, new.series_id, now=2_000_000_000.0)
     study1 = out / f"study-{a.outcome.summary['study_key']}.html"
-    assert written == [study1, out / "index.html"]
+    person = out / f"participant-{new.outcome.summary['subject_key']}.html"
+    assert written == [study1, person, out / "index.html"]
     assert new.series_key in study1.read_text(encoding="utf-8")
     assert new.series_key in (out / "index.html").read_text(encoding="utf-8")
     assert other.read_bytes() == before

@@ -25,6 +25,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument("--format", choices=("csv", "json"), default="csv", help="default: csv")
     p.add_argument("--model-version", help="export this model version's results, not the current")
     p.add_argument("--out", type=Path, help="output file, written atomically (default: stdout)")
+    p.add_argument(
+        "--longitudinal",
+        action="store_true",
+        help="one row per participant and study in date order (primary FLAIR): volume, change "
+        "since the previous scan, mL per year, flags (drop, rejected, model changed)",
+    )
     p.set_defaults(func=run)
 
 
@@ -48,7 +54,14 @@ def run(args: argparse.Namespace) -> int:
             connectivity=cfg.connectivity,
             model_version=args.model_version,
         )
-    data = render_json(rows) if args.format == "json" else render_csv(rows)
+    if args.longitudinal:
+        from flairwatch.research import longitudinal
+
+        rows = longitudinal.longitudinal_rows(rows, cfg.longitudinal)
+        render = longitudinal.render_json if args.format == "json" else longitudinal.render_csv
+        data = render(rows)
+    else:
+        data = render_json(rows) if args.format == "json" else render_csv(rows)
     if args.out is None:
         print(data.decode("utf-8"), end="")
     else:
@@ -56,7 +69,8 @@ def run(args: argparse.Namespace) -> int:
         # the table stays tidy (one header row); its caution travels beside it
         notice = args.out.with_name(args.out.name + ".RESEARCH_ONLY.txt")
         results.write_atomic(notice, NOTICE_TEXT.encode("utf-8"))
-        log.info("%d series written to %s", len(rows), args.out)
+        log.info("%d %s written to %s", len(rows),
+                 "scans" if args.longitudinal else "series", args.out)  # fmt: skip
     print(BANNER, file=sys.stderr)
     if not rows:
         log.warning("no results to export%s",

@@ -2,7 +2,9 @@
 
 ``<out>/index.html`` lists every reported series (one row each, linked to its study page);
 ``<out>/study-<study-key>.html`` shows one study's QC images with volumes, QC marks and
-warnings. Both pages filter by status (unreviewed, accepted, rejected, corrected) with a few
+warnings; ``<out>/participant-<subject-key>.html`` (linked from each series card) shows one
+participant's WMH volume over time, a small SVG chart and the table of
+:mod:`flairwatch.research.longitudinal`. Both pages filter by status (unreviewed, accepted, rejected, corrected) with a few
 lines of inline JavaScript; the filter can be preset in the address, e.g. ``#status=rejected``.
 Images are linked by relative paths into the results folder (default ``<results>/gallery``),
 never copied; the pages load nothing from the network.
@@ -22,14 +24,17 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from flairwatch.config import Identifiers, LongitudinalSettings
 from flairwatch.engine import results
 from flairwatch.engine.pipeline import QC_FILE
 from flairwatch.errors import FlairwatchError
 from flairwatch.ledger.queries import ResultRecord, reported_results
 from flairwatch.ledger.store import Ledger
 from flairwatch.notice import BANNER
-from flairwatch.research.export import iso_date
+from flairwatch.research.export import build_row, iso_date, mark_primary
+from flairwatch.research.longitudinal import longitudinal_rows, parse_date
 from flairwatch.research.qc_marks import corrected_measures
+from flairwatch.research.volume_plot import volume_svg
 
 log = logging.getLogger(__name__)
 
@@ -86,6 +91,7 @@ class GalleryItem:
     note: str | None
     warnings: tuple[str, ...]
     qc_image: Path | None
+    subject_key: str | None = None
 
 
 def item_from(
@@ -112,6 +118,7 @@ def item_from(
         note=rec.qc_note,
         warnings=tuple(summary.get("warnings") or ()),
         qc_image=folder / qc_name if summary else None,
+        subject_key=rec.subject_key,
     )
 
 
@@ -159,11 +166,15 @@ def render_study(
             src = Path(os.path.relpath(it.qc_image, out_dir)).as_posix()
             img = f'<img src="{_e(src)}" alt="QC image of series {_e(it.series_key)}">'
         warnings = "".join(f'<li class="warn">{_e(w)}</li>' for w in it.warnings)
+        who = ""
+        if it.subject_key:
+            who = (f'<a href="participant-{_e(it.subject_key)}.html">participant '
+                   f"{_e(it.subject_key)}: volume over time</a><br>")  # fmt: skip
         cards.append(
             f'<figure id="{_e(it.series_key)}" {_attrs(it)}>{img}<figcaption>'
             f"<strong>{_e(it.series_key)}</strong> {_e(it.description)} {_e(it.acquisition_date)}<br>"
             f"WMH {_e(_ml(it.lesion_volume_ml))} in {_e(it.lesion_count)} lesions; "
-            f"intracranial {_e(_ml(it.intracranial_volume_ml))}; model {_e(it.model)}<br>"
+            f"intracranial {_e(_ml(it.intracranial_volume_ml))}; model {_e(it.model)}<br>{who}"
             f'QC: <span class="st-{_e(it.status)}">{_e(_status_text(it))}</span> '
             f"{_e(it.note)}<ul>{warnings}</ul></figcaption></figure>"
         )
@@ -193,6 +204,93 @@ def render_index(items: Sequence[GalleryItem], generated: float) -> str:
     )
     body = f"<table>\n{head}\n" + "\n".join(rows) + "\n</table>"
     return _page("QC review: all series", body, generated)
+
+
+_FLAG_TEXT = {
+    "flag_drop": "volume drop",
+    "flag_rejected": "rejected in QC",
+    "flag_model_changed": "other model than the scan before",
+    "flag_no_date": "no date",
+}
+# the participant pages show no identifiers, so no pseudonym key is ever needed
+_NO_IDS = Identifiers(patient_id="drop", patient_name="drop", dates="keep")
+
+
+def _flags(row: dict[str, Any]) -> list[str]:
+    return [text for key, text in _FLAG_TEXT.items() if row.get(key)]
+
+
+def render_participant(subject: str, rows: Sequence[dict[str, Any]], generated: float) -> str:
+    """One participant's page: the volume-over-time chart and the longitudinal rows."""
+    points = [
+        (when, float(r["lesion_volume_ml"]), bool(_flags(r)))
+        for r in rows
+        if (when := parse_date(r.get("scan_date"))) and r.get("lesion_volume_ml") is not None
+    ]
+    chart = volume_svg(points, title=f"WMH volume over time, participant {subject}")
+    lines = []
+    for r in rows:
+        link = f"study-{r.get('study_key')}.html#{r.get('series_key')}"
+        change, per_year = r.get("change_ml"), r.get("change_ml_per_year")
+        lines.append(
+            f'<tr data-status="{_e(r.get("qc_status"))}" '
+            f'data-corrected="{int(r.get("mask_source") == "corrected")}">'
+            f"<td>{_e(r.get('scan_date') or 'no date')}</td>"
+            f'<td><a href="{_e(link)}">{_e(r.get("study_key"))}</a></td>'
+            f"<td>{_e(_ml(r.get('lesion_volume_ml')))}</td>"
+            f"<td>{_e('' if change is None else f'{change:+.2f} mL')}</td>"
+            f"<td>{_e('' if per_year is None else f'{per_year:+.2f} mL/year')}</td>"
+            f"<td>{_e(r.get('qc_status'))}</td><td>{_e(r.get('model_name'))} "
+            f"{_e(r.get('model_version'))}</td>"
+            f'<td class="warn">{_e(", ".join(_flags(r)))}</td></tr>'
+        )
+    head = (
+        "<tr><th>date</th><th>study</th><th>WMH volume</th><th>change</th><th>per year</th>"
+        "<th>QC</th><th>model</th><th>flags</th></tr>"
+    )
+    body = (
+        '<p><a href="index.html">All studies</a></p>\n'
+        f"{chart}\n<table>\n{head}\n" + "\n".join(lines) + "\n</table>\n"
+        "<p>One row per study (its primary FLAIR), corrected masks where a reviewer attached "
+        "one. A change smaller than the method's repeatability means nothing; a flagged scan "
+        "needs a look before it enters an analysis.</p>"
+    )
+    return _page(f"Participant {subject}: WMH volume over time", body, generated)
+
+
+def participant_histories(
+    ledger: Ledger,
+    *,
+    connectivity: int = DEFAULT_CONNECTIVITY,
+    subject_key: str | None = None,
+    settings: LongitudinalSettings | None = None,
+) -> dict[str, list[dict[str, Any]]]:
+    """Longitudinal rows per participant (of one, or all), read from the ledger and summaries."""
+    rows = []
+    for rec in reported_results(ledger):
+        if not rec.subject_key or subject_key not in (None, rec.subject_key):
+            continue
+        folder = Path(rec.result_path)
+        summary = results.read_summary(folder) if results.is_complete(folder) else {}
+        correction = None
+        if rec.correction_path:
+            correction = corrected_measures(Path(rec.correction_path), connectivity)
+        rows.append(build_row(rec, summary, correction, _NO_IDS, lambda: b""))
+    out: dict[str, list[dict[str, Any]]] = {}
+    for row in longitudinal_rows(mark_primary(rows), settings or LongitudinalSettings()):
+        out.setdefault(str(row["subject_key"]), []).append(row)
+    return out
+
+
+def _write_participants(
+    out_dir: Path, histories: dict[str, list[dict[str, Any]]], now: float
+) -> list[Path]:
+    pages = []
+    for subject, rows in sorted(histories.items()):
+        page = out_dir / f"participant-{subject}.html"
+        results.write_atomic(page, render_participant(subject, rows, now).encode("utf-8"))
+        pages.append(page)
+    return pages
 
 
 def gather_items(
@@ -243,6 +341,8 @@ def write_gallery(
     for it in items:
         by_study.setdefault(it.study_key, []).append(it)
     pages = [_write_study(out_dir, study, group, now) for study, group in sorted(by_study.items())]
+    histories = participant_histories(ledger, connectivity=connectivity)
+    pages += _write_participants(out_dir, histories, now)
     return [*pages, _write_index(out_dir, items, now)]
 
 
@@ -259,7 +359,7 @@ def refresh_study(
     Reads the summaries of that study only. Failures are logged and swallowed: the gallery
     must never stop processing.
     """
-    rows = ledger.query("SELECT study_key FROM series WHERE id = ?", (series_id,))
+    rows = ledger.query("SELECT study_key, subject_key FROM series WHERE id = ?", (series_id,))
     if not rows:
         return []
     study = rows[0][0] or "unknown"
@@ -267,8 +367,14 @@ def refresh_study(
         out_dir.mkdir(parents=True, exist_ok=True, mode=results.DIR_MODE)
         items = gather_items(ledger, connectivity=connectivity, study_key=study)
         page = _write_study(out_dir, study, items, now)
+        history = {}
+        if rows[0][1]:
+            history = participant_histories(
+                ledger, connectivity=connectivity, subject_key=rows[0][1]
+            )
+        people = _write_participants(out_dir, history, now)
         index = gather_items(ledger, connectivity=connectivity, summaries=False)
-        return [page, _write_index(out_dir, index, now)]
+        return [page, *people, _write_index(out_dir, index, now)]
     except (OSError, FlairwatchError) as exc:
         log.warning("gallery %s not updated: %s", out_dir, exc)
         return []
