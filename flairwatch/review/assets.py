@@ -23,6 +23,7 @@ table{border-collapse:collapse;background:#fff}td,th{border:1px solid #ccc;paddi
 .st-unreviewed{color:#555}
 .dispute{background:#fff3cd;border:1px solid #d39e00;padding:.3em .6em;font-weight:bold}
 .layout{display:flex;gap:1.5em;flex-wrap:wrap;align-items:flex-start}
+.layout>.view{flex:0 0 520px}.layout>.side{flex:1 1 22em;max-width:40em}
 #slice{width:512px;image-rendering:pixelated;background:#000;display:block}
 .controls label{display:block;margin:.2em 0}
 .keys{color:#555;font-size:.9em}

@@ -77,7 +77,7 @@ def page(title: str, body: str, *, reviewer: str | None, back: str = "/", script
         f'<p class="banner" id="banner">{e(CAUTION)}</p>\n'
         f'<header><a href="/">Queue</a> {_reviewer_form(reviewer, back)}</header>\n'
         f"<main><h1>{e(title)}</h1>\n{body}\n</main>\n"
-        f'<footer class="muted">{e(BANNER)}</footer>{tail}</body></html>\n'
+        f'<footer class="banner">{e(BANNER)}</footer>{tail}</body></html>\n'
     )
 
 
@@ -282,7 +282,7 @@ def render_series(p: SeriesPage, reviewer: str | None) -> str:
         + "</p>"
     )
     body = (
-        f'{facts}<div class="layout"><div>{viewer}</div><div style="max-width:36em">'
+        f'{facts}<div class="layout"><div class="view">{viewer}</div><div class="side">'
         f"{_controls(p)}{decide}<p class='keys'>{e(KEYS_HELP)}</p>"
         f'<h2>Decisions</h2><div id="history">{render_history(p.history, p.result_id)}</div>'
         f"<h2>Volumes</h2>{_volumes(p)}</div></div>"

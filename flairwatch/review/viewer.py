@@ -53,7 +53,9 @@ class SeriesView:
     ``image`` is float32 (X, Y, Z) on axes (L, P, S); ``layers`` maps a layer name (keys of
     :data:`LAYER_COLOURS`) to a bool array of the same shape; ``spacing_mm`` is the voxel size
     along (L, P, S); ``level`` and ``width`` are the starting grey window in image units;
-    ``source`` says where the image came from, in words.
+    ``source`` says where the image came from, in words. The starting window runs from 0 (or
+    the image's 0.5th percentile in the head when that is negative) to the 99.5th percentile of
+    the head (:func:`flairwatch.engine.qc_image.intensity_levels`).
     """
 
     image: np.ndarray
@@ -108,6 +110,8 @@ def make_view(
     oriented = {name: axial_view(np.asarray(m) > 0.5, affine_lps)[0] for name, m in layers.items()}
     spacing = np.linalg.norm(np.asarray(shown_affine)[:3, :3], axis=0)
     _, low, high = intensity_levels(shown)
+    if low >= 0:  # magnitude images: black at 0 keeps fluid dark and tissue grey (common practice)
+        low = 0.0
     return SeriesView(
         image=np.ascontiguousarray(shown),
         layers={k: np.ascontiguousarray(v) for k, v in oriented.items()},
