@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import csv
 import io
+import re
 import shutil
 import sqlite3
 import sys
@@ -366,3 +367,27 @@ def test_command_refuses_a_network_address_without_tls(
     assert main(["review", "--config", str(arc.config_file), "--address", "0.0.0.0"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "SSH tunnel" in err[0]
+
+
+def test_decision_rewrites_the_static_gallery_at_once(arc: Archive) -> None:
+    assert arc.cfg.results is not None
+    gallery = arc.cfg.results / "gallery"
+    assert main(["qc", "gallery", "--config", str(arc.config_file)]) == 0
+    c = arc.entries[2]
+    page = gallery / f"study-{c.outcome.summary['study_key']}.html"
+    before = re.findall(r'id="([^"]+)" data-status="(\w+)"', page.read_text("utf-8"))
+    assert (c.series_key, "unreviewed") in before
+    site = _site(arc)
+    site.gallery = gallery
+    with create_app(site).test_client() as cl:
+        cl.set_cookie(ACCESS_COOKIE, TOKEN)
+        cl.set_cookie(NAME_COOKIE, "Reviewer%20Three")
+        r = cl.post(
+            f"/series/{c.series_key}/decision",
+            data={"mark": "rejected", "result": str(c.result_id)},
+        )
+        assert r.status_code == 303
+    after = re.findall(r'id="([^"]+)" data-status="(\w+)"', page.read_text("utf-8"))
+    assert (c.series_key, "rejected") in after
+    index = (gallery / "index.html").read_text("utf-8")
+    assert re.search(rf'data-status="rejected"[^>]*>.*{c.series_key}', index)

@@ -43,6 +43,7 @@ def run(args: argparse.Namespace) -> int:
         return 2
     from flairwatch.ledger.store import Ledger
     from flairwatch.notice import CAUTION
+    from flairwatch.research.gallery import GALLERY_FOLDER
     from flairwatch.review.access import check_serving, new_token
 
     cfg = config_from_args(args, "results", "state")
@@ -58,7 +59,11 @@ def run(args: argparse.Namespace) -> int:
     check_serving(settings)
     with Ledger.open_readonly(cfg.state):  # refuses a missing or old ledger with what to do
         pass
-    site = Site(state=cfg.state, token=new_token(), settings=settings)
+    gallery = None if cfg.results is None else cfg.results / GALLERY_FOLDER
+    site = Site(
+        state=cfg.state, token=new_token(), settings=settings, gallery=gallery,
+        connectivity=cfg.connectivity,
+    )  # fmt: skip
     print(CAUTION, file=sys.stderr)
 
     def announce(url: str) -> None:

@@ -7,7 +7,8 @@ visit, then a cookie) or, with ``review.password`` set, a log-in. A wrong or mis
 (:func:`flairwatch.review.access.is_series_key`) and be known to the ledger, else 404; URLs are
 never turned into file paths. Decisions are recorded with
 :func:`flairwatch.research.qc_marks.mark_result`, the function ``flairwatch qc mark`` calls, so
-they appear at once wherever marks are read (``export``, the gallery when it is next written).
+they appear at once wherever marks are read (``export``); when the static gallery exists, its
+pages of that study and its index are rewritten after each decision.
 
 The ledger is opened per request (one SQLite connection per thread): read-only for pages and
 slices, for writing only while a decision is recorded.
@@ -33,6 +34,7 @@ from flairwatch.config import ReviewSettings
 from flairwatch.errors import ConfigInvalid
 from flairwatch.ledger.queries import QC_MARKS, ResultRecord, find_result
 from flairwatch.ledger.store import Ledger
+from flairwatch.research.gallery import DEFAULT_CONNECTIVITY, INDEX_FILE, refresh_study
 from flairwatch.research.qc_marks import mark_result
 from flairwatch.review import pages
 from flairwatch.review.access import clean_name, clean_note, is_series_key, secret_matches
@@ -75,6 +77,10 @@ class Site:
     token: str
     settings: ReviewSettings = field(default_factory=ReviewSettings)
     cache: ViewCache = field(default_factory=ViewCache)
+    gallery: Path | None = (
+        None  # the static gallery's folder: its pages are rewritten on a decision
+    )
+    connectivity: int = DEFAULT_CONNECTIVITY
 
     @property
     def tls(self) -> bool:
@@ -292,6 +298,11 @@ def create_app(site: Site) -> Flask:
                 abort(409, "a newer result of this series arrived: reload the page and look again")
             mark_result(ledger, key, mark, note, by=name, now=time.time())
             decisions = history(ledger, rec)
+            if site.gallery is not None and (site.gallery / INDEX_FILE).is_file():
+                refresh_study(
+                    ledger, site.gallery, rec.series_id, connectivity=site.connectivity,
+                    now=time.time(),
+                )  # fmt: skip
         if request.accept_mimetypes.best != "application/json":
             return redirect(pages.series_url(key, parse_filters({})), code=303)
         return jsonify(
