@@ -16,6 +16,7 @@ import re
 import shutil
 import sqlite3
 import sys
+import threading
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -31,9 +32,18 @@ from flairwatch.cli.review import INSTALL_HINT
 from flairwatch.config import ReviewSettings, config_from_mapping
 from flairwatch.errors import ConfigInvalid
 from flairwatch.ledger.core import LEDGER_FILE
+from flairwatch.ledger.queries import find_result
 from flairwatch.review.access import check_serving, is_loopback, is_series_key, new_token
+from flairwatch.review.loading import ViewCache
 from flairwatch.review.queue import Decision, Filters, QueueItem, disagreement, neighbours, select
-from flairwatch.review.viewer import LAYER_COLOURS, SliceSettings, border, make_view, slice_rgb
+from flairwatch.review.viewer import (
+    LAYER_COLOURS,
+    SeriesView,
+    SliceSettings,
+    border,
+    make_view,
+    slice_rgb,
+)
 from tests.model_fixtures import make_tiny_model
 from tests.review_fixtures import Archive, make_archive
 
@@ -391,3 +401,24 @@ def test_decision_rewrites_the_static_gallery_at_once(arc: Archive) -> None:
     assert (c.series_key, "rejected") in after
     index = (gallery / "index.html").read_text("utf-8")
     assert re.search(rf'data-status="rejected"[^>]*>.*{c.series_key}', index)
+
+
+def test_view_cache_loads_a_series_once_even_while_prefetching(arc: Archive) -> None:
+    with arc.ledger() as ledger:
+        rec = find_result(ledger, arc.entries[0].series_key)
+    calls: list[int] = []
+    gate = threading.Event()
+    view = make_view(np.zeros((2, 2, 2), np.float32), np.eye(4), {}, "test")
+
+    def slow() -> SeriesView:
+        calls.append(1)
+        gate.wait(5)
+        return view
+
+    cache = ViewCache(size=1)
+    thread = cache.prefetch(rec, slow)
+    assert thread is not None and cache.prefetch(rec, slow) is None, "already loading"
+    threading.Timer(0.2, gate.set).start()
+    assert cache.get(rec, slow) is view  # waits for the prefetch instead of loading again
+    thread.join(5)
+    assert calls == [1] and len(cache) == 1

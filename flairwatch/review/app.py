@@ -120,6 +120,18 @@ def _version(rec: ResultRecord) -> str:
     return f"{rec.result_id}-{zlib.crc32((rec.correction_path or '').encode('utf-8')):08x}"
 
 
+def _prefetch(site: Site, key: str) -> None:
+    """Start loading the series ``key`` in the background (its own ledger connection)."""
+
+    def load() -> SeriesView:
+        with Ledger.open_readonly(site.state) as ledger:
+            return load_view(ledger, find_result(ledger, key))
+
+    with Ledger.open_readonly(site.state) as ledger:
+        rec = find_result(ledger, key)
+    site.cache.prefetch(rec, load)
+
+
 def _number(name: str, default: float) -> float:
     raw = request.args.get(name)
     if raw is None or raw == "":
@@ -257,6 +269,8 @@ def create_app(site: Site) -> Flask:
         summary = summary_of(rec)
         item = next((it for it in items if it.series_key == key), None) or item_of(rec, summary)
         before, after = neighbours(items, key, f)
+        if after is not None:
+            _prefetch(site, after.series_key)
         header, rows = lesion_table(rec, summary)
         page = pages.SeriesPage(
             item=item, result_id=rec.result_id, version=_version(rec), depth=view.depth,
