@@ -126,6 +126,46 @@ class ReviewSettings:
 
 REVIEW_KEYS = ("address", "port", "password", "tls_cert", "tls_key")
 
+SEND_OBJECTS = ("segmentation", "measurements")  # segmentation.dcm, measurements.dcm
+
+
+@dataclass(frozen=True)
+class SendNode:
+    """A DICOM node in ``send.nodes``: C-STORE to ``ae_title`` at ``host``:``port`` of ``objects``."""
+
+    name: str
+    ae_title: str
+    host: str
+    port: int
+    objects: tuple[str, ...] = SEND_OBJECTS
+
+
+@dataclass(frozen=True)
+class SendSettings:
+    """``send:`` (:mod:`flairwatch.network.send`): ``ae_title`` is our calling AE title; a failed
+    send is tried again after ``retry_seconds``, then twice as long each time up to
+    ``retry_max_seconds``, and given up ``give_up_days`` after it entered the outbox."""
+
+    nodes: tuple[SendNode, ...]
+    ae_title: str = "FLAIRWATCH"
+    retry_seconds: float = 60.0
+    retry_max_seconds: float = 3600.0
+    give_up_days: float = 7.0
+
+
+@dataclass(frozen=True)
+class ReceiveSettings:
+    """``receive:`` (:mod:`flairwatch.network.receive`): the Store SCP answers as ``ae_title`` on
+    ``address``:``port``, only to calling AE titles in ``allow``, at most ``max_associations`` at
+    once and ``max_instance_mb`` MiB per instance."""
+
+    ae_title: str
+    port: int
+    allow: tuple[str, ...]
+    address: str = "127.0.0.1"
+    max_associations: int = 4
+    max_instance_mb: int = 2048
+
 
 @dataclass(frozen=True)
 class Config:
@@ -152,9 +192,11 @@ class Config:
     overdue_seconds: float = DEFAULT_OVERDUE_SECONDS  # status: a job running longer than
     overdue_factor: float = DEFAULT_OVERDUE_FACTOR  # max(these s, factor x median) is a problem
     worker_memory_mb: int = DEFAULT_WORKER_MEMORY_MB  # address-space cap per worker; 0 = none
-    review: ReviewSettings = field(default_factory=ReviewSettings)
     canary: CanarySettings = field(default_factory=CanarySettings)
     longitudinal: LongitudinalSettings = field(default_factory=LongitudinalSettings)
+    review: ReviewSettings = field(default_factory=ReviewSettings)
+    send: SendSettings | None = None  # None: results go nowhere
+    receive: ReceiveSettings | None = None  # None: no Store SCP
 
     def threads_per_worker(self) -> int:
         if self.threads > 0:
@@ -216,6 +258,44 @@ def _outputs(raw: Any) -> OutputSettings:
     return out
 
 
+def _review(raw: Any, base_dir: Path | None) -> ReviewSettings:
+    if raw is None:
+        return ReviewSettings()
+    if not isinstance(raw, Mapping):
+        raise ConfigInvalid("config key 'review' must be a mapping like {address: 127.0.0.1}")
+    unknown = set(raw) - set(REVIEW_KEYS)
+    if unknown:
+        raise ConfigInvalid(
+            f"config key 'review' has unknown entries {sorted(unknown)}; use {', '.join(REVIEW_KEYS)}"
+        )
+    values: dict[str, Any] = {}
+    for key in ("address", "password"):
+        v = raw.get(key)
+        if v in (None, ""):
+            continue
+        if not isinstance(v, str):
+            raise ConfigInvalid(f"config key 'review.{key}' must be text, got a {type(v).__name__}")
+        values[key] = v
+    port = raw.get("port")
+    if port not in (None, ""):
+        if isinstance(port, bool) or not isinstance(port, int) or not 0 <= port <= 65535:
+            raise ConfigInvalid(f"config key 'review.port' must be 0 to 65535, got {port!r}")
+        values["port"] = port
+    for key in ("tls_cert", "tls_key"):
+        v = raw.get(key)
+        if v in (None, ""):
+            continue
+        if not isinstance(v, str):
+            raise ConfigInvalid(f"config key 'review.{key}' must be a path, got {v!r}")
+        p = Path(v).expanduser()
+        values[key] = base_dir / p if base_dir is not None and not p.is_absolute() else p
+    if ("tls_cert" in values) != ("tls_key" in values):
+        raise ConfigInvalid(
+            "config keys 'review.tls_cert' and 'review.tls_key' go together; set both"
+        )
+    return ReviewSettings(**values)
+
+
 def _section(key: str, raw: Any, names: tuple[str, ...]) -> Mapping[str, Any]:
     if raw is None:
         return {}
@@ -258,42 +338,80 @@ def _longitudinal(raw: Any) -> LongitudinalSettings:
     )
 
 
-def _review(raw: Any, base_dir: Path | None) -> ReviewSettings:
-    if raw is None:
-        return ReviewSettings()
-    if not isinstance(raw, Mapping):
-        raise ConfigInvalid("config key 'review' must be a mapping like {address: 127.0.0.1}")
-    unknown = set(raw) - set(REVIEW_KEYS)
-    if unknown:
+def _text(key: str, value: Any, *, ae: bool = False) -> str:
+    """Non-empty text; ``ae``: an AE title (PS3.5 6.2: at most 16 characters, no backslash)."""
+    text = value.strip() if isinstance(value, str) else ""
+    if not text or (ae and (len(text) > 16 or "\\" in text or not text.isprintable())):
+        what = "an AE title of 1 to 16 characters, no backslash" if ae else "non-empty text"
+        raise ConfigInvalid(f"config key '{key}' must be {what}, got {value!r}")
+    return text
+
+
+def _whole(key: str, value: Any, lo: int, hi: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, int) or not lo <= value <= hi:
+        raise ConfigInvalid(f"config key '{key}' must be a whole number {lo}-{hi}, got {value!r}")
+    return value
+
+
+def _needs(key: str, given: Mapping[str, Any], names: tuple[str, ...]) -> None:
+    if missing := [n for n in names if given.get(n) in (None, "")]:
+        raise ConfigInvalid(f"config key '{key}' lacks {', '.join(missing)}; add them")
+
+
+def _send_node(key: str, raw: Any) -> SendNode:
+    given = _section(key, raw, ("name", "ae_title", "host", "port", "objects"))
+    _needs(key, given, ("name", "ae_title", "host", "port"))
+    name = _text(f"{key}.name", given["name"])
+    if not name.replace("-", "").replace("_", "").replace(".", "").isalnum() or len(name) > 64:
+        raise ConfigInvalid(f"config key '{key}.name' must be letters, digits, -_. , got {name!r}")
+    objects = given.get("objects", list(SEND_OBJECTS))
+    if not isinstance(objects, list) or not objects or not set(objects) <= set(SEND_OBJECTS):
         raise ConfigInvalid(
-            f"config key 'review' has unknown entries {sorted(unknown)}; use {', '.join(REVIEW_KEYS)}"
+            f"config key '{key}.objects' must list some of {', '.join(SEND_OBJECTS)}, got {objects!r}"
         )
-    values: dict[str, Any] = {}
-    for key in ("address", "password"):
-        v = raw.get(key)
-        if v in (None, ""):
-            continue
-        if not isinstance(v, str):
-            raise ConfigInvalid(f"config key 'review.{key}' must be text, got a {type(v).__name__}")
-        values[key] = v
-    port = raw.get("port")
-    if port not in (None, ""):
-        if isinstance(port, bool) or not isinstance(port, int) or not 0 <= port <= 65535:
-            raise ConfigInvalid(f"config key 'review.port' must be 0 to 65535, got {port!r}")
-        values["port"] = port
-    for key in ("tls_cert", "tls_key"):
-        v = raw.get(key)
-        if v in (None, ""):
-            continue
-        if not isinstance(v, str):
-            raise ConfigInvalid(f"config key 'review.{key}' must be a path, got {v!r}")
-        p = Path(v).expanduser()
-        values[key] = base_dir / p if base_dir is not None and not p.is_absolute() else p
-    if ("tls_cert" in values) != ("tls_key" in values):
+    return SendNode(
+        name, _text(f"{key}.ae_title", given["ae_title"], ae=True), _text(f"{key}.host", given["host"]),
+        _whole(f"{key}.port", given["port"], 1, 65535), tuple(dict.fromkeys(objects)),
+    )  # fmt: skip
+
+
+def _send(raw: Any) -> SendSettings:
+    names = ("nodes", "ae_title", "retry_seconds", "retry_max_seconds", "give_up_days")
+    given = _section("send", raw, names)
+    if not isinstance(given.get("nodes"), list) or not given["nodes"]:
         raise ConfigInvalid(
-            "config keys 'review.tls_cert' and 'review.tls_key' go together; set both"
+            "config key 'send.nodes' must list nodes like "
+            "[{name: archive, ae_title: ARCHIVE, host: 192.0.2.10, port: 104}]"
         )
-    return ReviewSettings(**values)
+    nodes = tuple(_send_node(f"send.nodes[{i}]", n) for i, n in enumerate(given["nodes"]))
+    if len({n.name for n in nodes}) < len(nodes):
+        raise ConfigInvalid("config key 'send.nodes' names a node twice; give each its own name")
+    values: dict[str, Any] = {
+        k: _number(f"send.{k}", given[k], lo=0) for k in names[2:] if k in given
+    }
+    if "ae_title" in given:
+        values["ae_title"] = _text("send.ae_title", given["ae_title"], ae=True)
+    return SendSettings(nodes, **values)
+
+
+def _receive(raw: Any) -> ReceiveSettings:
+    names = ("ae_title", "port", "allow", "address", "max_associations", "max_instance_mb")
+    given = _section("receive", raw, names)
+    _needs("receive", given, names[:3])
+    allow = given["allow"]
+    if not isinstance(allow, list) or not allow:
+        raise ConfigInvalid(f"config key 'receive.allow' must list calling AE titles: {allow!r}")
+    values: dict[str, Any] = {
+        k: _whole(f"receive.{k}", given[k], 1, 1 << 20) for k in names[4:] if k in given
+    }
+    if "address" in given:
+        values["address"] = _text("receive.address", given["address"])
+    return ReceiveSettings(
+        _text("receive.ae_title", given["ae_title"], ae=True),
+        _whole("receive.port", given["port"], 1, 65535),
+        tuple(_text(f"receive.allow[{i}]", a, ae=True) for i, a in enumerate(allow)),
+        **values,
+    )
 
 
 def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None) -> Config:
@@ -355,14 +473,18 @@ def config_from_mapping(raw: Mapping[str, Any], *, base_dir: Path | None = None)
         values["select"] = rules_from_mapping(raw["select"])
     if "identifiers" in raw:
         values["identifiers"] = _identifiers(raw["identifiers"])
-    if "review" in raw:
-        values["review"] = _review(raw["review"], base_dir)
     if "outputs" in raw:
         values["outputs"] = _outputs(raw["outputs"])
+    if "review" in raw:
+        values["review"] = _review(raw["review"], base_dir)
     if "canary" in raw:
         values["canary"] = _canary(raw["canary"])
     if "longitudinal" in raw:
         values["longitudinal"] = _longitudinal(raw["longitudinal"])
+    if raw.get("send") is not None:
+        values["send"] = _send(raw["send"])
+    if raw.get("receive") is not None:
+        values["receive"] = _receive(raw["receive"])
     return Config(**values)
 
 

@@ -107,6 +107,11 @@ COMMANDS: tuple[Command, ...] = (
         "flairwatch.cli.demo",
     ),
     Command(
+        "receive",
+        "receive scans over DICOM into the inbox and send results to DICOM nodes (network unit)",
+        "flairwatch.cli.receive",
+    ),
+    Command(
         "phantoms",
         "write synthetic FLAIR phantoms with known WMH masks (research and testing only)",
         "flairwatch.cli.phantoms",

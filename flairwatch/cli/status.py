@@ -81,10 +81,14 @@ def run_status(args: argparse.Namespace) -> int:
             overdue_s=cfg.overdue_seconds,
             overdue_factor=cfg.overdue_factor,
         )
+        outbox = ledger.outbox_counts()  # results sent to DICOM nodes (flairwatch receive)
     if args.json:
-        print(json.dumps(asdict(report) | {"healthy": report.healthy}, indent=2, default=str))
+        extra = {"healthy": report.healthy, "outbox": [asdict(c) for c in outbox]}
+        print(json.dumps(asdict(report) | extra, indent=2, default=str))
     else:
-        print(render(report))
+        from flairwatch.network.plan import outbox_lines
+
+        print("\n".join([render(report), *outbox_lines(outbox)]))
     return 0 if report.healthy else 1
 
 
