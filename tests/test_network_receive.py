@@ -257,3 +257,55 @@ def test_receive_without_an_inbox_is_a_one_line_config_error(
     assert main(["receive", "--config", str(cfg)]) == 2
     err = capsys.readouterr().err.strip()
     assert "\n" not in err and "'inbox'" in err
+
+
+@pytest.mark.parametrize(
+    ("text", "key"),
+    [
+        # PS3.5 6.2, VR AE: at most 16 characters, no backslash
+        ("receive: {ae_title: ABCDEFGHIJKLMNOPQ, port: 11112, allow: [A]}", "receive.ae_title"),
+        ("receive: {ae_title: FW, port: 11112, allow: ['A\\\\B']}", "receive.allow[0]"),
+        ("receive: {ae_title: FW, port: 0, allow: [A]}", "receive.port"),
+        ("receive: {ae_title: FW, port: 11112, allow: []}", "receive.allow"),
+        ("receive: {ae_title: FW, port: 11112, allow: [A], max_associations: 0}", "receive.max"),
+        ("send: {nodes: [{name: a, ae_title: A, host: h}]}", "send.nodes[0]"),
+        ("send: {nodes: [{name: a, ae_title: A, host: h, port: 1, objects: [mask]}]}", "objects"),
+        ("send: {nodes: [{name: a/b, ae_title: A, host: h, port: 1}]}", "send.nodes[0].name"),
+        ("send: {give_up_days: -1, nodes: [{name: a, ae_title: A, host: h, port: 1}]}", "give_up"),
+    ],
+)
+def test_bad_network_settings_name_their_key(tmp_path: Path, text: str, key: str) -> None:
+    from flairwatch.config import load_config
+    from flairwatch.errors import ConfigInvalid
+
+    path = tmp_path / "c.yaml"
+    path.write_text(text + "\n", encoding="utf-8")
+    with pytest.raises(ConfigInvalid, match=key.replace(".", r"\.").replace("[", r"\[")) as err:
+        load_config(path)
+    assert "\n" not in str(err.value)
+
+
+def _unit(name: str) -> dict[str, list[str]]:
+    """Key -> values of a systemd unit file (systemd.syntax(7): later lines add to a list)."""
+    keys: dict[str, list[str]] = {}
+    path = Path(__file__).parent.parent / "deploy" / name
+    for line in path.read_text(encoding="utf-8").splitlines():
+        if "=" in line and not line.startswith(("#", ";", "[")):
+            k, _, v = line.partition("=")
+            keys.setdefault(k.strip(), []).append(v.strip())
+    return keys
+
+
+def test_only_the_network_unit_has_network_and_only_for_its_peers() -> None:
+    daemon, network = _unit("flairwatch.service"), _unit("flairwatch-network.service")
+    # systemd.exec(5): PrivateNetwork=yes leaves only a loopback device; AF_UNIX only
+    assert daemon["PrivateNetwork"] == ["yes"] and daemon["RestrictAddressFamilies"] == ["AF_UNIX"]
+    assert daemon["IPAddressDeny"] == ["any"]
+    # systemd.resource-control(5): deny any, allow the listed peers; bind only the listen port
+    assert network["IPAddressDeny"] == ["any"] and "PrivateNetwork" not in network
+    assert network["IPAddressAllow"][0] == "localhost" and len(network["IPAddressAllow"]) == 2
+    assert network["SocketBindDeny"] == ["any"] and network["SocketBindAllow"] == ["tcp:11112"]
+    assert network["ExecStart"][0].split()[1:3] == ["receive", "--config"]
+    assert (
+        network["User"] == daemon["User"] and network["StateDirectory"] == daemon["StateDirectory"]
+    )
