@@ -27,9 +27,14 @@ import yaml
 from pydicom.dataset import Dataset
 
 from flairwatch.cli import main
-from flairwatch.config import config_from_mapping
+from flairwatch.config import Identifiers, config_from_mapping
+from flairwatch.engine.dicom_seg import build_segmentation
+from flairwatch.engine.outputs import DICOM_SKIP_ERRORS
 from flairwatch.errors import ConfigInvalid
-from tests.dicom_fixtures import oblique_orientation
+from flairwatch.intake.load import volume_from_datasets
+from flairwatch.ledger.queries import ResultRecord
+from flairwatch.research.export import build_row
+from tests.dicom_fixtures import oblique_orientation, read_mprage
 from tests.model_fixtures import make_tiny_model
 from tests.series_fixtures import SeriesSpec, write_series
 
@@ -304,6 +309,16 @@ def test_outputs_off_and_identifiers_followed(tmp_path: Path) -> None:
     assert seg.PatientID == summary["patient_id"] != "FW-0001"
     assert str(seg.PatientName) == "" and seg.StudyDate == ""
     _dciodvfy(seg_only / "segmentation.dcm")
+    # the export's path columns name exactly the DICOM files the folder holds
+    for folder in (off, seg_only):
+        facts = json.loads((folder / "summary.json").read_text())
+        rec = ResultRecord(1, 1, "1.2", "1.3", 1, None, None, None, "tiny-threshold", "0.0.1",
+                           str(folder), None, None, True, 0.0, None, None, None)  # fmt: skip
+        row = build_row(rec, facts, None, Identifiers(), lambda: b"key")
+        paths = [row["segmentation_path"], row["measurements_path"]]
+        assert sorted(Path(p).name for p in paths if p) == sorted(
+            p.name for p in folder.glob("*.dcm")
+        )
 
 
 def test_nifti_input_and_a_source_without_frame_of_reference_are_skipped(tmp_path: Path) -> None:
@@ -334,3 +349,37 @@ def test_bad_outputs_settings_are_one_line_errors(outputs: dict[str, Any], words
         config_from_mapping({"outputs": outputs})
     assert words in str(err.value) and "\n" not in str(err.value)
     assert config_from_mapping({"outputs": {"measurements": False}}).outputs.segmentation
+
+
+def test_lax_headers_still_give_a_valid_seg_and_are_left_as_they_were(tmp_path: Path) -> None:
+    """Type 2 attributes left out (PS3.3 C.7.1.1 Patient, C.7.2.1 General Study, C.7.6.2 Slice
+    Thickness) are filled in the SEG only; dciodvfy still finds no error."""
+    inbox = _series(tmp_path / "in", SeriesSpec(rows=16, columns=16, slices=4, lesions=()))
+    headers = [pydicom.dcmread(p) for p in sorted(inbox.iterdir())]
+    for ds in headers:
+        for keyword in ("SliceThickness", "PatientBirthDate", "PatientSex", "StudyTime"):
+            if keyword in ds:
+                delattr(ds, keyword)
+    before = [ds.to_json() for ds in headers]
+    volume = volume_from_datasets(headers, "lax")
+    mask = np.zeros(volume.shape, np.uint8)
+    mask[4:8, 5:9, 1:3] = 1
+    seg = build_segmentation(headers, {"wmh": mask}, volume.affine_lps, algorithm_name="m",
+                             algorithm_version="1", software_version="0", device_serial="x")  # fmt: skip
+    seg.save_as(tmp_path / "seg.dcm")
+    _dciodvfy(tmp_path / "seg.dcm")
+    assert [ds.to_json() for ds in headers] == before
+    # the grid's slice spacing (3 mm, SeriesSpec) stands in for the missing thickness
+    shared = seg.SharedFunctionalGroupsSequence[0].PixelMeasuresSequence[0]
+    assert float(shared.SliceThickness) == pytest.approx(3.0)
+
+
+def test_an_enhanced_source_highdicom_cannot_take_is_skipped_not_failed() -> None:
+    """nibabel's enhanced MR (PS3.3 A.36.2) keeps Pixel Measures per frame; highdicom wants them
+    shared, so building the SEG raises one of the errors write_dicom turns into a skip."""
+    ds = read_mprage()
+    volume = volume_from_datasets([ds], "enhanced")
+    with pytest.raises(DICOM_SKIP_ERRORS):
+        build_segmentation([ds], {"wmh": np.zeros(volume.shape, np.uint8)}, volume.affine_lps,
+                           algorithm_name="m", algorithm_version="1", software_version="0",
+                           device_serial="x")  # fmt: skip

@@ -124,17 +124,30 @@ _TYPE2_COPIED = (
 )
 
 
-def _complete(ds: Dataset) -> Dataset:
-    """``ds``, or a copy with the missing :data:`_TYPE2_COPIED` attributes present and empty."""
+def _complete(ds: Dataset, slice_mm: float) -> Dataset:
+    """``ds``, or a copy with the missing :data:`_TYPE2_COPIED` attributes present and empty,
+    and an empty or missing Slice Thickness set to ``slice_mm``."""
     missing = [k for k in _TYPE2_COPIED if k not in ds]
-    if not missing:
+    thick = _positive(ds.get("SliceThickness"))
+    if not missing and thick is not None:
         return ds
     out = Dataset()
     for element in ds:  # a new dataset holding the same elements: ``ds`` stays as it was
         out.add(element)
     for keyword in missing:
         setattr(out, keyword, "")
+    if thick is None:
+        out.SliceThickness = round(slice_mm, 6)
     return out
+
+
+def _positive(value: object) -> float | None:
+    """A DS value as a positive float, else None (empty, missing or unreadable)."""
+    try:
+        number = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return None
+    return number if number > 0 else None
 
 
 def _frames(mask: np.ndarray, ks: Sequence[int]) -> np.ndarray:
@@ -192,9 +205,17 @@ def build_segmentation(
         pairs = sorted(zip((k[0] for k in ks), range(len(headers)), strict=True))
         sources = [headers[n] for _, n in pairs]
         order = [k for k, _ in pairs]
-    sources[0] = _complete(sources[0])
+    # highdicom takes the SEG's Pixel Measures (PS3.3 C.7.6.16.2.1, Slice Thickness Type 1) of
+    # single-frame images from the first one, where Slice Thickness is Type 2 (may be empty or
+    # absent): the grid's slice spacing stands in for it then
+    spacing = np.linalg.norm(np.asarray(affine_lps, dtype=np.float64)[:3, :3], axis=0)
+    sources[0] = _complete(sources[0], float(spacing[2]))
     kinds = [k for k in SEGMENT_KINDS if k.output in masks]
-    stacked = np.stack([_frames(np.asarray(masks[k.output]) != 0, order) for k in kinds], axis=-1)
+    # segments last, as highdicom takes them, but each segment contiguous in memory: its sum
+    # over segments (an overlap check) then adds whole planes, some ten times faster than
+    # summing pairs of adjacent bytes
+    planes = np.stack([_frames(np.asarray(masks[k.output]) != 0, order) for k in kinds])
+    stacked = np.moveaxis(planes.view(np.uint8), 0, -1)
     algorithm = hd.AlgorithmIdentificationSequence(
         name=algorithm_name,
         family=ALGORITHM_FAMILY,
@@ -213,7 +234,7 @@ def build_segmentation(
     ]
     seg = hd.seg.Segmentation(
         source_images=sources,
-        pixel_array=stacked.astype(np.uint8),
+        pixel_array=stacked,
         segmentation_type=hd.seg.SegmentationTypeValues.BINARY,
         segment_descriptions=descriptions,
         series_instance_uid=generate_uid(),

@@ -54,6 +54,9 @@ LESIONS_FILE = "lesions.csv"
 QC_FILE = "qc.png"
 MASK_GZIP_LEVEL = 6
 log = logging.getLogger(__name__)
+# what building a SEG or SR raises for a source it cannot use (highdicom raises the built-in
+# types for headers it cannot take, e.g. an enhanced image with per-frame pixel measures)
+DICOM_SKIP_ERRORS = (NoSegmentation, ValueError, TypeError, AttributeError, KeyError)
 PROBABILITY_GZIP_LEVEL = 1
 # files smaller than this are compressed as one gzip member even when threads are offered
 _SPLIT_BYTES = 4 << 20
@@ -272,8 +275,7 @@ def write_dicom(
             sr.save_as(folder / SR_FILE)
             timings["write_measurements"] = round(time.perf_counter() - start, 3)
             facts["measurements"] = "written"
-    except (NoSegmentation, ValueError, TypeError, AttributeError, KeyError) as exc:
-        # highdicom raises these for headers it cannot use; the NIfTI result is still good
+    except DICOM_SKIP_ERRORS as exc:  # the NIfTI result is still good
         reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         for name in (SEG_FILE, SR_FILE):
             (folder / name).unlink(missing_ok=True)

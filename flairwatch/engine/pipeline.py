@@ -13,6 +13,7 @@ import hashlib
 import json
 import logging
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -215,10 +216,13 @@ class Engine:
             with timed(timings, "write"):
                 title = self._title(final, analysis)
                 threads = self.segmenter.threads
-                timings.update(write_files(tmp, volume, analysis, title, threads=threads))
-                dicom, dicom_timings = write_dicom(
-                    tmp, volume, analysis, self._dicom_job(headers, secret)
-                )
+                # the SEG and SR are built beside the other files: most of their time is
+                # Python in highdicom, which overlaps the zlib and numpy work of write_files
+                with ThreadPoolExecutor(max_workers=1) as pool:
+                    job = self._dicom_job(headers, secret)
+                    pending = pool.submit(write_dicom, tmp, volume, analysis, job)
+                    timings.update(write_files(tmp, volume, analysis, title, threads=threads))
+                    dicom, dicom_timings = pending.result()
                 timings.update(dicom_timings)
             summary = self._summary(source, volume, analysis, final, revision, secret, timings)
             for key, name in (("segmentation", SEG_FILE), ("measurements", SR_FILE)):

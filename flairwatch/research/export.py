@@ -41,6 +41,8 @@ from typing import Any
 from flairwatch import keys
 from flairwatch.config import Identifiers
 from flairwatch.engine import results
+from flairwatch.engine.dicom_seg import SEG_FILE
+from flairwatch.engine.dicom_sr import SR_FILE
 from flairwatch.engine.pipeline import MASK_FILE
 from flairwatch.ledger.queries import ResultRecord, reported_results
 from flairwatch.ledger.store import Ledger
@@ -87,6 +89,8 @@ EXPORT_COLUMNS: tuple[str, ...] = (
     "primary_flair",
     "result_path",
     "mask_path",
+    "segmentation_path",
+    "measurements_path",
 )
 
 _QC_RANK = {"accepted": 0, "unreviewed": 1, "rejected": 2}
@@ -192,7 +196,16 @@ def build_row(
         "primary_flair": 0,
         "result_path": rec.result_path,
         "mask_path": rec.correction_path or str(Path(rec.result_path) / MASK_FILE),
+        # the DICOM SEG and SR, where the result has them (summary.json lists what was written)
+        "segmentation_path": _listed(rec, summary, "segmentation", SEG_FILE),
+        "measurements_path": _listed(rec, summary, "measurements", SR_FILE),
     }
+
+
+def _listed(rec: ResultRecord, summary: dict[str, Any], key: str, name: str) -> str | None:
+    """The path of one result file when ``summary.json`` lists it, else None."""
+    listed = (summary.get("files") or {}).get(key) == name
+    return str(Path(rec.result_path) / name) if listed else None
 
 
 def _primary_order(row: dict[str, Any]) -> tuple[Any, ...]:
