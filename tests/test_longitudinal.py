@@ -157,3 +157,28 @@ def test_gallery_participant_page_plots_the_scans_and_is_linked(
     )
     assert f'href="participant-{subject}.html"' in study
     assert "http://www.w3.org/2000/svg" in page and "https://" not in page
+
+
+def test_gallery_participant_page_uses_the_configured_drop_thresholds(
+    tmp_path: Path, tiny_model_manifest: Path
+) -> None:
+    # the same two scans (the second has one lesion fewer, a fall of a few tenths of a mL) are
+    # flagged with thresholds of 0 % and 0 mL and not with 99 % and 50 mL: the `longitudinal:`
+    # setting reaches the gallery, not only the export
+    from flairwatch.config import LongitudinalSettings
+    from flairwatch.research.gallery import write_gallery
+
+    arc = make_archive(tmp_path / "site", tiny_model_manifest)
+    _add_dated(arc, "one", SeriesSpec(lesions=((20, 24, 5, 4), (40, 36, 7, 4))), "20240301")
+    _add_dated(arc, "two", SeriesSpec(lesions=((20, 24, 5, 3),)), "20250301")
+    subject = arc.entries[0].outcome.summary["subject_key"]
+    pages = {}
+    for name, settings in (
+        ("strict", LongitudinalSettings(drop_percent=0.0, drop_ml=0.0)),
+        ("loose", LongitudinalSettings(drop_percent=99.0, drop_ml=50.0)),
+    ):
+        with arc.ledger() as ledger:
+            write_gallery(ledger, tmp_path / name, longitudinal=settings, now=2_000_000_000.0)
+        pages[name] = (tmp_path / name / f"participant-{subject}.html").read_text(encoding="utf-8")
+    assert "volume drop" in pages["strict"]
+    assert "volume drop" not in pages["loose"]

@@ -114,7 +114,8 @@ def run_gallery(args: argparse.Namespace) -> int:
         raise ConfigInvalid("qc gallery needs 'results' in the config file (or --results DIR)")
     out = args.out or cfg.results / GALLERY_FOLDER
     with Ledger.open_readonly(state) as ledger:
-        pages = write_gallery(ledger, out, connectivity=cfg.connectivity, now=time.time())
+        pages = write_gallery(ledger, out, connectivity=cfg.connectivity,
+                              longitudinal=cfg.longitudinal, now=time.time())  # fmt: skip
     print(f"gallery written to {out / 'index.html'} ({len(pages)} pages)")
     return 0
 

@@ -62,7 +62,7 @@ def run(args: argparse.Namespace) -> int:
     gallery = None if cfg.results is None else cfg.results / GALLERY_FOLDER
     site = Site(
         state=cfg.state, token=new_token(), settings=settings, gallery=gallery,
-        connectivity=cfg.connectivity,
+        connectivity=cfg.connectivity, longitudinal=cfg.longitudinal,
     )  # fmt: skip
     print(CAUTION, file=sys.stderr)
 

@@ -132,7 +132,8 @@ class Dispatcher:
                 results.set_current(version_dir.parent, version_dir.name)
                 refresh_study(
                     self.ledger, self.results / GALLERY_FOLDER, job.series_id,
-                    connectivity=self.cfg.connectivity, now=now,
+                    connectivity=self.cfg.connectivity, longitudinal=self.cfg.longitudinal,
+                    now=now,
                 )  # fmt: skip
             except OSError as exc:  # the result is safe and recorded; the pointer can wait
                 self.pointers_stale = True

@@ -38,7 +38,8 @@ def fix_pointers(ledger: Ledger, cfg: Config, now: float) -> list[int]:
         if results.current_version(folder.parent) != folder.name:
             results.set_current(folder.parent, folder.name)
             refresh_study(ledger, cfg.results / GALLERY_FOLDER, series_id,
-                          connectivity=cfg.connectivity, now=now)  # fmt: skip
+                          connectivity=cfg.connectivity, longitudinal=cfg.longitudinal,
+                          now=now)  # fmt: skip
             fixed.append(series_id)
     if fixed:
         log.warning("%d series folder(s) pointed at an older result; now at the current one",

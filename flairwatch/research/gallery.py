@@ -332,16 +332,25 @@ def _write_index(out_dir: Path, items: Sequence[GalleryItem], now: float) -> Pat
 
 
 def write_gallery(
-    ledger: Ledger, out_dir: Path, *, connectivity: int = DEFAULT_CONNECTIVITY, now: float
+    ledger: Ledger,
+    out_dir: Path,
+    *,
+    connectivity: int = DEFAULT_CONNECTIVITY,
+    longitudinal: LongitudinalSettings | None = None,
+    now: float,
 ) -> list[Path]:
-    """Write the index and every study page into ``out_dir``; return the pages written."""
+    """Write the index, every study page and every participant page into ``out_dir``.
+
+    ``longitudinal`` holds the drop thresholds of the participant pages (None: the defaults).
+    Returns the pages written.
+    """
     out_dir.mkdir(parents=True, exist_ok=True, mode=results.DIR_MODE)
     items = gather_items(ledger, connectivity=connectivity)
     by_study: dict[str, list[GalleryItem]] = {}
     for it in items:
         by_study.setdefault(it.study_key, []).append(it)
     pages = [_write_study(out_dir, study, group, now) for study, group in sorted(by_study.items())]
-    histories = participant_histories(ledger, connectivity=connectivity)
+    histories = participant_histories(ledger, connectivity=connectivity, settings=longitudinal)
     pages += _write_participants(out_dir, histories, now)
     return [*pages, _write_index(out_dir, items, now)]
 
@@ -352,6 +361,7 @@ def refresh_study(
     series_id: int,
     *,
     connectivity: int = DEFAULT_CONNECTIVITY,
+    longitudinal: LongitudinalSettings | None = None,
     now: float,
 ) -> list[Path]:
     """After a series is done: rewrite its study's page and the index (for the daemon).
@@ -370,7 +380,7 @@ def refresh_study(
         history = {}
         if rows[0][1]:
             history = participant_histories(
-                ledger, connectivity=connectivity, subject_key=rows[0][1]
+                ledger, connectivity=connectivity, subject_key=rows[0][1], settings=longitudinal
             )
         people = _write_participants(out_dir, history, now)
         index = gather_items(ledger, connectivity=connectivity, summaries=False)

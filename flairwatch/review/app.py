@@ -30,7 +30,7 @@ from flask.typing import ResponseReturnValue
 from werkzeug.exceptions import HTTPException
 from werkzeug.serving import BaseWSGIServer, make_server
 
-from flairwatch.config import ReviewSettings
+from flairwatch.config import LongitudinalSettings, ReviewSettings
 from flairwatch.errors import ConfigInvalid
 from flairwatch.ledger.queries import QC_MARKS, ResultRecord, find_result
 from flairwatch.ledger.store import Ledger
@@ -81,6 +81,7 @@ class Site:
         None  # the static gallery's folder: its pages are rewritten on a decision
     )
     connectivity: int = DEFAULT_CONNECTIVITY
+    longitudinal: LongitudinalSettings = field(default_factory=LongitudinalSettings)
 
     @property
     def tls(self) -> bool:
@@ -315,7 +316,7 @@ def create_app(site: Site) -> Flask:
             if site.gallery is not None and (site.gallery / INDEX_FILE).is_file():
                 refresh_study(
                     ledger, site.gallery, rec.series_id, connectivity=site.connectivity,
-                    now=time.time(),
+                    longitudinal=site.longitudinal, now=time.time(),
                 )  # fmt: skip
         if request.accept_mimetypes.best != "application/json":
             return redirect(pages.series_url(key, parse_filters({})), code=303)
