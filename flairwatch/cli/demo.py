@@ -160,6 +160,8 @@ def run_demo(folder: Path, model: Path | None, *, say: Callable[[str], None] = p
         f"  QC gallery (open in a browser): {(results / 'gallery' / 'index.html').resolve()}\n"
         f"  one table for statistics:       {table.resolve()}\n"
         f"  result folders:                 {results.resolve()}\n"
+        "  mask over the scan in a DICOM viewer: import a result folder's segmentation.dcm\n"
+        "                                  (DICOM SEG) and measurements.dcm (SR) with the scan\n"
         f"  truth masks of these scans:     {cases.resolve()}\n"
         f"  ledger: flairwatch status --config {config}\n"
         "RESEARCH USE ONLY: not for diagnosis; the model was trained on synthetic images only."
