@@ -10,10 +10,17 @@ about: every series has exactly one current result, nothing is running, queued, 
 refused, no half-built folder is left, and the ledger and the results folder name the same
 folders. Target: 0 lost, 0 duplicated, 0 wrongly failed.
 
+With ``--send`` a real ``flairwatch receive`` process sends every result's ``segmentation.dcm``
+and ``measurements.dcm`` to a Store SCP the benchmark runs on 127.0.0.1, and is SIGKILLed on a
+random schedule of its own (scripts/crash_send.py), also inside a C-STORE before the node's
+answer. After the final run one clean ``receive`` drains the outbox; then every file of every
+landed current result must have reached the node at least once and every outbox row must be
+``sent``. Target: 0 sends lost, 0 waiting, 0 given up (duplicates are expected and counted).
+
 Usage (from the repository root)::
 
     .venv/bin/python scripts/bench_crash.py --kills 100 [--model M] [--shape 128x128x24]
-        [--seed 1] [--work DIR] [--json report.json]
+        [--seed 1] [--work DIR] [--json report.json] [--send]
 
 Times are printed in sgemm units (flairwatch.speed) measured in the same run. The series are
 invented (scripts/bench_load.py's phantom); results are research output of a synthetic test.
@@ -42,6 +49,14 @@ REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
 from bench_load import make_series  # noqa: E402  (this folder is on sys.path when run)
+from crash_send import (  # noqa: E402
+    CountingNode,
+    NetworkKiller,
+    check_sends,
+    drain,
+    receive_command,
+    send_section,
+)
 
 from flairwatch.engine.models import manifest_path  # noqa: E402
 from flairwatch.engine.results import CURRENT_FILE, TEMP_PREFIX  # noqa: E402
@@ -156,11 +171,15 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--work", type=Path, help="work folder (default: a temporary one, removed)")
     ap.add_argument("--json", type=Path, help="also write the figures here")
+    ap.add_argument("--send", action="store_true",
+                    help="also send results to a local DICOM node and kill the sender")  # fmt: skip
     args = ap.parse_args(argv)
     shape = tuple(int(x) for x in args.shape.split("x"))
     unit = sgemm_unit()
     work = args.work or Path(tempfile.mkdtemp(prefix="flairwatch-crash-"))
     rng = random.Random(args.seed)
+    node = CountingNode().start() if args.send else None
+    killer = None
     try:
         for name in ("inbox", "results", "state", "staging"):
             (work / name).mkdir(parents=True, exist_ok=True)
@@ -171,15 +190,27 @@ def main(argv: list[str] | None = None) -> int:
             "state": str(work / "state"), "settle_seconds": 0.5, "rescan_seconds": 5,
             "retry_seconds": 1, "workers": 1, "threads": 1, "model": str(args.model),
         }  # fmt: skip
+        if node is not None:
+            config["send"] = send_section(node.port)
         (work / "flairwatch.yaml").write_text(yaml.safe_dump(config), encoding="utf-8")
         cmd = [sys.executable, "-m", "flairwatch.cli", "watch", "--config",
                str(work / "flairwatch.yaml")]  # fmt: skip
         kinds: Counter[str] = Counter()
         start = time.perf_counter()
+        if node is not None:
+            # the outbox takes only results created after the node first appeared
+            # (send-nodes.json): the sender starts before the daemon makes any
+            killer = NetworkKiller(receive_command(work / "flairwatch.yaml"), work, node,
+                                   args.seed + 1)  # fmt: skip
+            killer.start()
+            if not wait_until(lambda: (work / "state" / "send-nodes.json").exists(), 120, 0.1):
+                raise SystemExit(f"the network process did not start; see {work}/network.log")
         for round_ in range(args.kills):
             # a rename: the series arrives at once
             os.rename(folders[round_], work / "inbox" / folders[round_].name)
             kinds[kill_round(cmd, work, rng.choices(KINDS, WEIGHTS)[0], rng)] += 1
+        if killer is not None:
+            killer.finish()
         with open(work / "once.log", "ab") as fh:
             rc = subprocess.run([*cmd, "--once"], cwd=REPO, stdout=fh, stderr=subprocess.STDOUT,
                                 timeout=3600, check=False).returncode  # fmt: skip
@@ -196,7 +227,19 @@ def main(argv: list[str] | None = None) -> int:
             "sgemm_unit_s": round(unit, 3),
             "elapsed_units": round(elapsed / unit, 1),
         }
+        if node is not None and killer is not None:
+            net_rc, drained = drain(receive_command(work / "flairwatch.yaml"), work)
+            figures |= check_sends(work, node) | {
+                "network_kills": sum(killer.kinds.values()),
+                "network_kills_by_moment": dict(killer.kinds),
+                "network_final_exit_code": net_rc,
+                "outbox_drained": drained,
+            }
     finally:
+        if killer is not None and killer.is_alive():
+            killer.finish()
+        if node is not None:
+            node.stop()
         if args.work is None:
             shutil.rmtree(work, ignore_errors=True)
     print(
@@ -207,9 +250,22 @@ def main(argv: list[str] | None = None) -> int:
         f"folders agree: {figures['ledger_matches_folders']}; max attempts "
         f"{figures['max_attempts']}; final run exit {rc}; {in_units(elapsed, unit)}"
     )
+    if args.send:
+        print(
+            f"sending: {figures['network_kills']} kills of the network process "
+            f"{figures['network_kills_by_moment']}, {figures['send_files']} result files: "
+            f"{figures['sent']} sent, {figures['send_lost']} lost, {figures['send_waiting']} "
+            f"waiting, {figures['send_given_up']} given up, {figures['duplicates_received']} "
+            f"duplicates received; final network run exit {figures['network_final_exit_code']}"
+        )
     if args.json:
         args.json.write_text(json.dumps(figures, indent=2) + "\n", encoding="utf-8")
     ok = (figures["lost"], figures["duplicated"], figures["wrongly_failed"]) == (0, 0, 0)
+    if args.send:
+        ok = ok and figures["outbox_drained"] and figures["network_final_exit_code"] == 0
+        ok = ok and (figures["send_lost"], figures["send_waiting"], figures["send_given_up"]) == (
+            0, 0, 0)  # fmt: skip
+        ok = ok and figures["sent"] == figures["send_files"] > 0
     return 0 if ok and rc == 0 and figures["ledger_matches_folders"] else 1
 
 
