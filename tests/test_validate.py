@@ -367,3 +367,34 @@ def test_validate_label_map_option(
     assert err == [
         "flairwatch: error: --label-map exclude=x: labels are whole numbers joined by +, e.g. exclude=1+3"
     ]
+
+
+def test_ventricle_dice_is_scored_when_the_model_gives_ventricles(tmp_path: Path) -> None:
+    # A series with a dark box standing in for the ventricles, the fixture model with a ventricle
+    # output, and the box as the case's ventricle reference. The expected Dice is computed here
+    # with numpy from the engine's own ventricle mask: Dice = 2 |A and B| / (|A| + |B|) (the 2019
+    # IEEE TMI WMH challenge definition).
+    from flairwatch.config import Config
+    from flairwatch.engine.pipeline import Engine
+    from tests.model_fixtures import make_tiny_model
+
+    spec = SeriesSpec(ventricles=((26, 38, 22, 42, 3, 9),))
+    manifest = make_tiny_model(tmp_path / "model", ventricles=True)
+    case = tmp_path / "cases" / "a"
+    write_series(case / "image", spec)
+    box = phantom_array(spec) == 150
+    write_nifti(case / "wmh_reference.nii.gz", (phantom_array(spec) == 600).astype(np.uint8),
+                spec_affine_ras(spec))  # fmt: skip
+    write_nifti(case / "ventricles_reference.nii.gz", box.astype(np.uint8), spec_affine_ras(spec))
+    model_vent = Engine(Config(model=manifest, threads=1)).analyse(read_case(case).image).ventricles
+    assert model_vent is not None
+    a = model_vent.astype(bool)
+    expected = 2 * int((a & box).sum()) / (int(a.sum()) + int(box.sum()))
+    assert expected > 0.5  # the fixture model finds most of the box
+    out = tmp_path / "report"
+    rc = main(["validate", "--cases", str(tmp_path / "cases"), "--out", str(out),
+               "--model", str(manifest)])  # fmt: skip
+    assert rc == 0
+    with open(out / "cases.csv", encoding="utf-8", newline="") as fh:
+        (row,) = csv.DictReader(fh)
+    assert float(row["ventricles_dice"]) == pytest.approx(expected, abs=1e-4)

@@ -34,7 +34,7 @@ from flairwatch.engine.pipeline import Engine
 from flairwatch.research import quality_card, quality_gate, quality_heldout
 from flairwatch.research.cases import find_case_folders, read_case
 from flairwatch.research.scoring import CaseResult, Segment, Segmentation, json_safe
-from flairwatch.research.validate import score_folders
+from flairwatch.research.validate import model_segment, score_folders
 from flairwatch.speed import in_units, sgemm_unit
 from flairwatch.volume import Volume
 
@@ -44,30 +44,13 @@ OLD_MODEL = Path(flairwatch.__file__).resolve().parent / "models" / "wmh-synth" 
 DEFAULT_SUITE = Path(tempfile.gettempdir()) / "shift-suite"
 
 
-def engine_segment(engine: Engine) -> Segment:
-    """The engine's ``analyse`` as a segmenter, ventricles included when the model gives them."""
-
-    def run(volume: Volume) -> Segmentation:
-        start = time.perf_counter()
-        a = engine.analyse(volume)
-        return Segmentation(
-            a.lesions.mask,
-            a.intracranial,
-            time.perf_counter() - start,
-            a.warnings,
-            ventricles=getattr(a, "ventricles", None),
-        )
-
-    return run
-
-
 def segmenters(new: Engine, old: Engine | None, k: float) -> dict[str, Segment]:
     """new, old (unless the same model) and the baseline, which uses the new model's brain mask.
 
     ``score_folders`` runs them in this order on the same image, so the baseline finds the new
     model's intracranial mask for that image.
     """
-    run_new = engine_segment(new)
+    run_new = model_segment(new)
     last: dict[int, Segmentation] = {}
 
     def first(volume: Volume) -> Segmentation:
@@ -91,7 +74,7 @@ def segmenters(new: Engine, old: Engine | None, k: float) -> dict[str, Segment]:
 
     out: dict[str, Segment] = {"new": first}
     if old is not None:
-        out["old"] = engine_segment(old)
+        out["old"] = model_segment(old)
     out["baseline"] = baseline
     return out
 

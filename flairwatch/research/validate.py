@@ -33,12 +33,21 @@ from flairwatch.volume import Volume
 
 
 def model_segment(engine: Engine) -> Segment:
-    """A :data:`Segment` that runs the engine's model and post-processing (``analyse``)."""
+    """A :data:`Segment` that runs the engine's model and post-processing (``analyse``).
+
+    The ventricle mask comes along when the model gives one, so ventricle Dice is scored too.
+    """
 
     def run(volume: Volume) -> Segmentation:
         start = time.perf_counter()
         a = engine.analyse(volume)
-        return Segmentation(a.lesions.mask, a.intracranial, time.perf_counter() - start, a.warnings)
+        return Segmentation(
+            a.lesions.mask,
+            a.intracranial,
+            time.perf_counter() - start,
+            a.warnings,
+            ventricles=a.ventricles,
+        )
 
     return run
 
