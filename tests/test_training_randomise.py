@@ -212,3 +212,28 @@ def test_fade_lesions_reaches_the_target_ratio_and_leaves_other_tissue_alone() -
     assert np.all(out <= x + 1e-6)  # lesions only ever get fainter
     # a target above the lesion's own contrast leaves the crop unchanged
     np.testing.assert_array_equal(rz.fade_lesions(x, tissue, 2.5), x)
+
+
+def test_fluid_levels_set_csf_and_ventricles_relative_to_white_matter() -> None:
+    # White matter 1.0, sulcal CSF 0.2 and ventricles 0.1 (a well-nulled FLAIR, common practice),
+    # mild noise; afterwards the class medians (numpy's median) are the asked multiples of WM's.
+    rng = np.random.default_rng(5)
+    tissue = np.full((3, 64, 64), rz.WM, np.uint8)
+    tissue[:, :, :10] = rz.CSF
+    tissue[:, 20:52, 20:52] = rz.VENTRICLE
+    base = np.where(tissue == rz.CSF, 0.2, np.where(tissue == rz.VENTRICLE, 0.1, 1.0))
+    x = (base + rng.normal(0, 0.01, base.shape)).astype(np.float32)
+    out = rz.fluid_levels(x, tissue, 1.2, 0.9)
+    wm = float(np.median(out[tissue == rz.WM]))
+    assert float(np.median(out[tissue == rz.CSF])) / wm == pytest.approx(1.2, abs=0.02)
+    assert float(np.median(out[tissue == rz.VENTRICLE])) / wm == pytest.approx(0.9, abs=0.02)
+    # the factor map is smoothed with a Gaussian of 0.7 px truncated at 4 sigma (scipy's default):
+    # white matter more than 3 pixels (chessboard distance) from fluid is untouched
+    square = np.zeros((1, 3, 3), bool)
+    square[0] = True
+    fluid = ndimage.binary_dilation(tissue != rz.WM, structure=square, iterations=4)
+    np.testing.assert_array_equal(out[~fluid], x[~fluid])
+    # order within a class is kept: one positive factor per class
+    vent = tissue == rz.VENTRICLE
+    inner = vent & ~ndimage.binary_dilation(~vent, iterations=4)
+    assert np.array_equal(np.argsort(out[inner]), np.argsort(x[inner]))

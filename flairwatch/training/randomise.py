@@ -39,7 +39,7 @@ def random_tissue_factors(rng: np.random.Generator) -> np.ndarray:
     f[OUTSIDE] = np.exp(rng.uniform(np.log(0.4), np.log(1.8)))
     f[CSF] = np.exp(rng.uniform(np.log(0.5), np.log(3.5)))
     f[VENTRICLE] = np.exp(rng.uniform(np.log(0.5), np.log(2.0)))
-    f[GM] = np.exp(rng.uniform(np.log(0.8), np.log(1.3)))
+    f[GM] = np.exp(rng.uniform(np.log(0.8), np.log(1.5)))
     f[WM] = np.exp(rng.uniform(np.log(0.85), np.log(1.15)))
     f[WMH] = f[WM] * rng.uniform(0.9, 1.15)
     return f
@@ -60,6 +60,32 @@ def remap_tissues(
         sigma = (0.0,) * (fmap.ndim - 2) + (smooth_px, smooth_px)
         fmap = ndimage.gaussian_filter(fmap, sigma=sigma, mode="nearest")
     return np.asarray(x * fmap, dtype=np.float32)
+
+
+def fluid_levels(
+    x: FloatArray, tissue: np.ndarray, csf_ratio: float, ventricle_ratio: float
+) -> FloatArray:
+    """Set the median of CSF and of the ventricles to the given multiples of white matter's.
+
+    Incomplete fluid suppression (an inversion time that does not null CSF, inflow, a short
+    TR) leaves sulci, cisterns and ventricles anywhere from dark to brighter than white
+    matter; the physics model always nulls them well. Each class is scaled by one factor
+    (texture and soft borders kept, through :func:`remap_tissues`, so a thin structure comes out
+    a little below its target); classes with fewer than
+    20 voxels in the crop, or a crop with little white matter, are left alone. ``x`` and
+    ``tissue`` are (C, h, w).
+    """
+    wm = x[tissue == WM]
+    if wm.size < 50:
+        return x
+    wm_level = float(np.median(wm))
+    factors = np.ones(N_TISSUES, dtype=np.float32)
+    for cls, ratio in ((CSF, csf_ratio), (VENTRICLE, ventricle_ratio)):
+        values = x[tissue == cls]
+        level = float(np.median(values)) if values.size >= 20 else 0.0
+        if level > 0:
+            factors[cls] = ratio * wm_level / level
+    return remap_tissues(x, tissue, factors)
 
 
 def fade_lesions(
@@ -273,12 +299,15 @@ def randomise_intensities(
 ) -> FloatArray:
     """The intensity part of training randomisation for one crop stack (labels untouched).
 
-    Per-tissue remapping and faint lesions (when tissue labels are known), bright look-alikes, a
-    contrast curve or gamma, a bias field, blur, a global scale and noise, each with its own
-    probability.
+    Per-tissue remapping, unsuppressed fluid and faint lesions (when tissue labels are known),
+    bright look-alikes, a contrast curve or gamma, a bias field, blur, a global scale and noise,
+    each with its own probability.
     """
     if tissue is not None and rng.random() < 0.8:
         x = remap_tissues(x, tissue, random_tissue_factors(rng))
+    if tissue is not None and rng.random() < 0.25:
+        ventricle_ratio = float(rng.uniform(0.25, 1.3))
+        x = fluid_levels(x, tissue, ventricle_ratio * float(rng.uniform(0.8, 1.3)), ventricle_ratio)
     if tissue is not None and rng.random() < 0.3:
         x = fade_lesions(x, tissue, float(rng.uniform(1.08, 1.35)))
     if rng.random() < 0.5:
