@@ -13,6 +13,7 @@ Outside references, named beside each check:
 from __future__ import annotations
 
 import json
+import logging
 import shutil
 import subprocess
 from pathlib import Path
@@ -274,9 +275,14 @@ def test_oblique_2d_with_ventricles_and_intracranial(tmp_path: Path) -> None:
     assert seg_refs == {seg.SOPInstanceUID}
 
 
-def test_sagittal_3d_with_a_wmh_only_model(tmp_path: Path) -> None:
+def test_sagittal_3d_with_a_wmh_only_model(
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
+) -> None:
     inbox = _series(tmp_path / "in", SAGITTAL, three_d=True)
-    vdir = _process(inbox, tmp_path / "out", _wmh_only_model(tmp_path / "model"))
+    with caplog.at_level(logging.INFO):
+        vdir = _process(inbox, tmp_path / "out", _wmh_only_model(tmp_path / "model"))
+    # highdicom's INFO chatter (one line per copied module) stays out of flairwatch's log
+    assert not [r for r in caplog.records if r.name.startswith("highdicom") and r.levelno < 30]
     summary = json.loads((vdir / "summary.json").read_text())
     for name in ("segmentation.dcm", "measurements.dcm"):
         _dciodvfy(vdir / name)

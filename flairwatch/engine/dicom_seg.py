@@ -14,6 +14,7 @@ WMH type from CID 7140 (CID 7151 is a baseline group, so other standard codes ar
 
 from __future__ import annotations
 
+import logging
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
@@ -25,6 +26,10 @@ from pydicom.uid import generate_uid
 
 from flairwatch.errors import InputRejected
 from flairwatch.intake.geometry import frames_of
+
+# highdicom logs each module it copies into a new instance at INFO, ten lines per result: noise
+# in a daemon's log. Its warnings and errors still come through.
+logging.getLogger("highdicom").setLevel(logging.WARNING)
 
 SEG_FILE = "segmentation.dcm"
 # PS3.3 C.7.3.1 Series Description (LO, 64 chars) and C.10.9 Content Label (CS, 16 chars)
