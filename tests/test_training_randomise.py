@@ -237,3 +237,16 @@ def test_fluid_levels_set_csf_and_ventricles_relative_to_white_matter() -> None:
     vent = tissue == rz.VENTRICLE
     inner = vent & ~ndimage.binary_dilation(~vent, iterations=4)
     assert np.array_equal(np.argsort(out[inner]), np.argsort(x[inner]))
+
+
+def test_motion_ghosts_are_shifted_attenuated_copies_along_one_axis() -> None:
+    # A single bright pixel: each ghost is numpy.roll's copy at its shift, scaled by its
+    # amplitude, and nothing appears along the other axis (ghosts follow phase encoding only).
+    x = np.zeros((3, 32, 32), np.float32)
+    x[:, 10, 12] = 1.0
+    out = rz.motion_ghosts(x, (5, -9), (0.2, 0.1), axis=1)
+    expected = x + 0.2 * np.roll(x, 5, axis=1) + 0.1 * np.roll(x, -9, axis=1)
+    np.testing.assert_allclose(out, expected, rtol=1e-6)
+    assert out[1, 15, 12] == pytest.approx(0.2) and out[1, 1, 12] == pytest.approx(0.1)
+    assert np.count_nonzero(out[1, :, :12]) == 0 and np.count_nonzero(out[1, :, 13:]) == 0
+    np.testing.assert_array_equal(x[:, 10, 12], 1.0)  # the input is not changed in place

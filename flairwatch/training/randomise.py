@@ -88,6 +88,22 @@ def fluid_levels(
     return remap_tissues(x, tissue, factors)
 
 
+def motion_ghosts(
+    x: FloatArray, shifts: tuple[int, ...], amplitudes: tuple[float, ...], axis: int
+) -> FloatArray:
+    """Add shifted, attenuated copies of the image along one in-plane axis (motion ghosts).
+
+    Periodic motion during a scan replicates the head along the phase-encoding direction
+    (common practice: ghosts appear along phase encoding only); each ghost is the crop rolled by
+    ``shifts[i]`` pixels along ``axis`` (1 = h, 2 = w of a (C, h, w) stack) times
+    ``amplitudes[i]``. Labels stay: a ghost of a lesion is not a lesion.
+    """
+    out = np.array(x, dtype=np.float32, copy=True)
+    for shift, amplitude in zip(shifts, amplitudes, strict=True):
+        out += np.float32(amplitude) * np.roll(x, shift, axis=axis)
+    return out
+
+
 def fade_lesions(
     x: FloatArray, tissue: np.ndarray, target_ratio: float, smooth_px: float = 0.7
 ) -> FloatArray:
@@ -300,7 +316,7 @@ def randomise_intensities(
     """The intensity part of training randomisation for one crop stack (labels untouched).
 
     Per-tissue remapping, unsuppressed fluid and faint lesions (when tissue labels are known),
-    bright look-alikes, a contrast curve or gamma, a bias field, blur, a global scale and noise,
+    bright look-alikes, motion ghosts, a contrast curve or gamma, a bias field, blur, a global scale and noise,
     each with its own probability.
     """
     if tissue is not None and rng.random() < 0.8:
@@ -312,6 +328,15 @@ def randomise_intensities(
         x = fade_lesions(x, tissue, float(rng.uniform(1.08, 1.35)))
     if rng.random() < 0.5:
         x = bright_lookalikes(x, tissue, lesion, rng)
+    if rng.random() < 0.2:
+        n = int(rng.integers(1, 4))
+        step = int(rng.integers(min(8, x.shape[1] // 4), max(9, x.shape[1] // 2)))
+        x = motion_ghosts(
+            x,
+            tuple(step * (i + 1) * int(rng.choice((-1, 1))) for i in range(n)),
+            tuple(float(rng.uniform(0.03, 0.2)) / (i + 1) for i in range(n)),
+            axis=int(rng.integers(1, 3)),
+        )
     r = rng.random()
     if r < 0.35:
         x = contrast_curve(x, rng)
