@@ -40,7 +40,8 @@ def run(args: argparse.Namespace) -> int:
     from flairwatch.engine import results
     from flairwatch.ledger.store import Ledger
     from flairwatch.notice import BANNER, NOTICE_TEXT
-    from flairwatch.research.export import gather_rows, render_csv, render_json
+    from flairwatch.research.export import EXPORT_COLUMNS, gather_rows
+    from flairwatch.research.tables import csv_bytes, json_bytes
 
     cfg = config_from_args(args, "state")
     if cfg.state is None:
@@ -58,10 +59,10 @@ def run(args: argparse.Namespace) -> int:
         from flairwatch.research import longitudinal
 
         rows = longitudinal.longitudinal_rows(rows, cfg.longitudinal)
-        render = longitudinal.render_json if args.format == "json" else longitudinal.render_csv
-        data = render(rows)
+        columns = longitudinal.LONGITUDINAL_COLUMNS
     else:
-        data = render_json(rows) if args.format == "json" else render_csv(rows)
+        columns = EXPORT_COLUMNS
+    data = (json_bytes if args.format == "json" else csv_bytes)(rows, columns)
     if args.out is None:
         print(data.decode("utf-8"), end="")
     else:

@@ -14,9 +14,7 @@ inline SVG scatter plot of old vs new volume; no network, no script).
 
 from __future__ import annotations
 
-import csv
 import html
-import io
 import json
 import statistics
 from collections.abc import Sequence
@@ -31,6 +29,7 @@ from flairwatch.engine.pipeline import MASK_FILE
 from flairwatch.intake.load import load_nifti
 from flairwatch.notice import BANNER, NOTICE_FILE, NOTICE_TEXT
 from flairwatch.research.metrics import dice, match_lesions
+from flairwatch.research.tables import csv_bytes
 
 CHANGE_COLUMNS: tuple[str, ...] = (
     "subject_key", "study_key", "series_key", "old_model", "new_model",
@@ -206,15 +205,6 @@ def svg_scatter(points: Sequence[tuple[float, float, bool, str]], size: int = 36
     return "\n".join(parts)
 
 
-def _csv(rows: Sequence[dict[str, Any]]) -> bytes:
-    buf = io.StringIO()
-    w = csv.DictWriter(buf, fieldnames=list(CHANGE_COLUMNS), lineterminator="\n")
-    w.writeheader()
-    for r in rows:
-        w.writerow({c: "" if r.get(c) is None else r.get(c) for c in CHANGE_COLUMNS})
-    return buf.getvalue().encode("utf-8")
-
-
 def render_html(rows: Sequence[dict[str, Any]], summary: dict[str, Any], title: str) -> str:
     points = [
         (r["old_volume_ml"], r["new_volume_ml"], bool(r["flagged"]), r["series_key"] or "")
@@ -250,7 +240,7 @@ def write_report(
     folder.mkdir(parents=True, exist_ok=True, mode=results.DIR_MODE)
     summary = summarise(rows, limits)
     files = {
-        "changes.csv": _csv(rows),
+        "changes.csv": csv_bytes(rows, CHANGE_COLUMNS),
         "summary.json": (json.dumps(summary, indent=2) + "\n").encode("utf-8"),
         "report.html": render_html(rows, summary, title).encode("utf-8"),
         NOTICE_FILE: NOTICE_TEXT.encode("utf-8"),

@@ -29,9 +29,6 @@ that decides wins:
 
 from __future__ import annotations
 
-import csv
-import io
-import json
 import logging
 import math
 from collections.abc import Callable, Sequence
@@ -231,22 +228,6 @@ def mark_primary(rows: Sequence[dict[str, Any]]) -> list[dict[str, Any]]:
     for row in best.values():
         row["primary_flair"] = 1
     return out
-
-
-def render_csv(rows: Sequence[dict[str, Any]]) -> bytes:
-    """CSV (RFC 4180 quoting, LF line ends, UTF-8), header row first; None becomes empty."""
-    buf = io.StringIO()
-    writer = csv.DictWriter(buf, fieldnames=list(EXPORT_COLUMNS), lineterminator="\n")
-    writer.writeheader()
-    for row in rows:
-        writer.writerow({c: ("" if row.get(c) is None else row.get(c)) for c in EXPORT_COLUMNS})
-    return buf.getvalue().encode("utf-8")
-
-
-def render_json(rows: Sequence[dict[str, Any]]) -> bytes:
-    """A JSON array of objects with the columns in order; missing values are null."""
-    ordered = [{c: row.get(c) for c in EXPORT_COLUMNS} for row in rows]
-    return (json.dumps(ordered, indent=1, ensure_ascii=False) + "\n").encode("utf-8")
 
 
 def gather_rows(

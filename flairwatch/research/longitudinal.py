@@ -26,10 +26,7 @@ Flags are 0/1 integers; research use only, not for diagnosis.
 
 from __future__ import annotations
 
-import csv
 import datetime as dt
-import io
-import json
 from collections.abc import Sequence
 from typing import Any
 
@@ -142,19 +139,3 @@ def longitudinal_rows(
     for subject in sorted(by_subject):
         out.extend(participant_rows(by_subject[subject], settings))
     return out
-
-
-def render_csv(rows: Sequence[dict[str, Any]]) -> bytes:
-    """CSV (RFC 4180 quoting, LF line ends, UTF-8), header row first; None becomes empty."""
-    buf = io.StringIO()
-    writer = csv.DictWriter(buf, fieldnames=list(LONGITUDINAL_COLUMNS), lineterminator="\n")
-    writer.writeheader()
-    for row in rows:
-        writer.writerow({c: "" if row.get(c) is None else row.get(c) for c in LONGITUDINAL_COLUMNS})
-    return buf.getvalue().encode("utf-8")
-
-
-def render_json(rows: Sequence[dict[str, Any]]) -> bytes:
-    """A JSON array of objects with the columns in order; missing values are null."""
-    ordered = [{c: row.get(c) for c in LONGITUDINAL_COLUMNS} for row in rows]
-    return (json.dumps(ordered, indent=1, ensure_ascii=False) + "\n").encode("utf-8")
