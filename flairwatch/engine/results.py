@@ -32,7 +32,8 @@ FILE_MODE = 0o640
 DIR_MODE = 0o750
 
 
-def fsync_dir(path: Path) -> None:
+def fsync_path(path: Path) -> None:
+    """fsync(2) a file or a folder (a folder: so that a rename into it survives a crash)."""
     fd = os.open(path, os.O_RDONLY)
     try:
         os.fsync(fd)
@@ -54,7 +55,7 @@ def write_atomic(path: Path, data: bytes) -> None:
         with contextlib.suppress(OSError):
             tmp.unlink()
         raise
-    fsync_dir(path.parent)
+    fsync_path(path.parent)
 
 
 def is_complete(version_dir: Path) -> bool:
@@ -89,7 +90,7 @@ def build_version_folder(
             os.chmod(item, FILE_MODE)
             with open(item, "rb") as fh:
                 os.fsync(fh.fileno())
-        fsync_dir(tmp)
+        fsync_path(tmp)
         try:
             os.rename(tmp, final)
         except OSError:
@@ -98,7 +99,7 @@ def build_version_folder(
                 shutil.rmtree(tmp, ignore_errors=True)
                 return final, read_summary(final), True
             raise
-        fsync_dir(parent)
+        fsync_path(parent)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
@@ -109,7 +110,7 @@ def set_aside(version_dir: Path) -> Path:
     """Rename a complete version folder out of the way (hidden, never deleted); returns it."""
     aside = version_dir.with_name(f"{ASIDE_PREFIX}{version_dir.name}-{uuid.uuid4().hex[:8]}")
     os.rename(version_dir, aside)
-    fsync_dir(version_dir.parent)
+    fsync_path(version_dir.parent)
     return aside
 
 

@@ -25,7 +25,7 @@ from collections.abc import Iterable, Iterator
 from pathlib import Path
 from typing import Any, Self
 
-from flairwatch.engine.results import fsync_dir
+from flairwatch.engine.results import fsync_path
 from flairwatch.errors import ConfigInvalid, StageFailed
 from flairwatch.ledger import schema
 from flairwatch.ledger.disk import check_local_disk
@@ -210,4 +210,4 @@ class LedgerCore:
         with open(tmp, "rb") as fh:
             os.fsync(fh.fileno())
         os.replace(tmp, target)
-        fsync_dir(target.parent)
+        fsync_path(target.parent)

@@ -38,7 +38,7 @@ from typing import TYPE_CHECKING, Any
 from pydicom import uid
 
 from flairwatch.config import ReceiveSettings
-from flairwatch.engine.results import fsync_dir
+from flairwatch.engine.results import fsync_path
 from flairwatch.keys import uid_key
 
 if TYPE_CHECKING:
@@ -82,14 +82,6 @@ def inbox_name(study_uid: str, series_uid: str, sop_uid: str) -> Path:
     return Path(uid_key(study_uid, "t"), uid_key(series_uid, "e"), uid_key(sop_uid, "i") + ".dcm")
 
 
-def _fsync_file(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
-
-
 def _make_dirs(root: Path, rel: Path) -> Path:
     """Create ``root/rel`` folder by folder, fsyncing each parent that gained an entry."""
     here = root
@@ -97,7 +89,7 @@ def _make_dirs(root: Path, rel: Path) -> Path:
         nxt = here / part
         try:
             nxt.mkdir(mode=0o750)
-            fsync_dir(here)
+            fsync_path(here)
         except FileExistsError:
             pass
         here = nxt
@@ -110,10 +102,10 @@ def deliver(received: Path, inbox: Path, rel: Path) -> bool:
     target = inbox / rel
     if target.is_file() and filecmp.cmp(received, target, shallow=False):
         return False
-    _fsync_file(received)
+    fsync_path(received)
     folder = _make_dirs(inbox, rel.parent)
     os.replace(received, target)
-    fsync_dir(folder)
+    fsync_path(folder)
     return True
 
 

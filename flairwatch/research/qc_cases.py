@@ -109,7 +109,7 @@ def write_case(ledger: Ledger, rec: ResultRecord, out: Path) -> Path | None:
         for item in tmp.iterdir():
             with open(item, "rb") as fh:
                 os.fsync(fh.fileno())
-        results.fsync_dir(tmp)
+        results.fsync_path(tmp)
         if final.exists():  # an older correction's case: move it aside, then drop it
             old = out / f".replaced-{final.name}-{uuid.uuid4().hex[:8]}"
             os.rename(final, old)
@@ -117,7 +117,7 @@ def write_case(ledger: Ledger, rec: ResultRecord, out: Path) -> Path | None:
             shutil.rmtree(old, ignore_errors=True)
         else:
             os.rename(tmp, final)
-        results.fsync_dir(out)
+        results.fsync_path(out)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise

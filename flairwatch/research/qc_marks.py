@@ -101,7 +101,7 @@ def _write_new(folder: Path, stem: str, data: bytes) -> Path:
                 os.link(tmp, target)
             except FileExistsError:
                 continue
-            results.fsync_dir(folder)
+            results.fsync_path(folder)
             return target
     finally:
         tmp.unlink(missing_ok=True)

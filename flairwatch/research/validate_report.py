@@ -22,7 +22,7 @@ from typing import Any
 from flairwatch import __version__
 from flairwatch.engine.pipeline import Engine
 from flairwatch.engine.qc_image import save_png
-from flairwatch.engine.results import fsync_dir
+from flairwatch.engine.results import fsync_path
 from flairwatch.errors import ConfigInvalid
 from flairwatch.notice import BANNER, NOTICE_FILE, NOTICE_TEXT
 from flairwatch.research import metrics
@@ -310,12 +310,12 @@ def publish_folder(out: Path, fill: Callable[[Path], None]) -> None:
         for item in tmp.iterdir():
             with open(item, "rb") as fh:
                 os.fsync(fh.fileno())
-        fsync_dir(tmp)
+        fsync_path(tmp)
         old = out.parent / f".{out.name}.old-{tag}"
         if out.exists():
             os.rename(out, old)
         os.rename(tmp, out)
-        fsync_dir(out.parent)
+        fsync_path(out.parent)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
