@@ -20,7 +20,12 @@ from onnx import TensorProto, helper, numpy_helper
 
 
 def build_tiny_onnx(
-    path: Path, *, channels: int = 3, gain: float = 12.0, ventricles: bool = False
+    path: Path,
+    *,
+    channels: int = 3,
+    gain: float = 12.0,
+    ventricles: bool = False,
+    intracranial: bool = True,
 ) -> None:
     centre = channels // 2
     inits = [
@@ -37,11 +42,15 @@ def build_tiny_onnx(
         helper.make_node("Sub", ["centre", "wmh_level"], ["w0"]),
         helper.make_node("Mul", ["w0", "gain"], ["w1"]),
         helper.make_node("Sigmoid", ["w1"], ["wmh"]),
-        helper.make_node("Sub", ["centre", "icv_level"], ["i0"]),
-        helper.make_node("Mul", ["i0", "gain"], ["i1"]),
-        helper.make_node("Sigmoid", ["i1"], ["icv"]),
     ]
-    outputs = ["wmh", "icv"]
+    outputs = ["wmh"]
+    if intracranial:
+        nodes += [
+            helper.make_node("Sub", ["centre", "icv_level"], ["i0"]),
+            helper.make_node("Mul", ["i0", "gain"], ["i1"]),
+            helper.make_node("Sigmoid", ["i1"], ["icv"]),
+        ]
+        outputs.append("icv")
     if ventricles:
         nodes += [
             helper.make_node("Sub", ["vent_level", "centre"], ["v0"]),
@@ -76,15 +85,22 @@ def make_tiny_model(
     threshold: float = 0.5,
     version: str = "0.0.1",
     ventricles: bool = False,
+    intracranial: bool = True,
 ) -> Path:
     """Write ``tiny.onnx`` and its manifest ``tiny.yaml`` into ``folder``; return the manifest path.
 
-    ``ventricles=True`` gives the model a third output channel, ``ventricles``.
+    ``ventricles=True`` gives the model a third output channel, ``ventricles``;
+    ``intracranial=False`` leaves out the ``intracranial`` channel (a WMH-only model, as a lab's
+    own may be).
     """
     folder.mkdir(parents=True, exist_ok=True)
     onnx_path = folder / "tiny.onnx"
-    build_tiny_onnx(onnx_path, channels=channels, ventricles=ventricles)
-    out_channels = ["wmh", "intracranial"] + (["ventricles"] if ventricles else [])
+    build_tiny_onnx(onnx_path, channels=channels, ventricles=ventricles, intracranial=intracranial)
+    out_channels = (
+        ["wmh"]
+        + (["intracranial"] if intracranial else [])
+        + (["ventricles"] if ventricles else [])
+    )
     manifest = {
         "name": "tiny-threshold",
         "version": version,

@@ -73,50 +73,6 @@ def _series(folder: Path, spec: SeriesSpec, *, three_d: bool = False) -> Path:
     return folder
 
 
-def _wmh_only_model(folder: Path) -> Path:
-    """The tiny model (tests/model_fixtures.py) cut down to its one required output, ``wmh``."""
-    import onnx
-    from onnx import TensorProto, helper, numpy_helper
-
-    manifest_path = make_tiny_model(folder)
-    manifest = yaml.safe_load(manifest_path.read_text())
-    inits = [
-        numpy_helper.from_array(np.array([1], dtype=np.int64), "start"),
-        numpy_helper.from_array(np.array([2], dtype=np.int64), "end"),
-        numpy_helper.from_array(np.array([1], dtype=np.int64), "axis"),
-        numpy_helper.from_array(np.array(12.0, dtype=np.float32), "gain"),
-        numpy_helper.from_array(np.array(1.4, dtype=np.float32), "level"),
-    ]
-    nodes = [
-        helper.make_node("Slice", ["image", "start", "end", "axis"], ["centre"]),
-        helper.make_node("Sub", ["centre", "level"], ["d"]),
-        helper.make_node("Mul", ["d", "gain"], ["g"]),
-        helper.make_node("Sigmoid", ["g"], ["probabilities"]),
-    ]
-    graph = helper.make_graph(
-        nodes,
-        "tiny_wmh_only",
-        [helper.make_tensor_value_info("image", TensorProto.FLOAT, ["N", 3, "H", "W"])],
-        [helper.make_tensor_value_info("probabilities", TensorProto.FLOAT, ["N", 1, "H", "W"])],
-        initializer=inits,
-    )
-    model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", 17)])
-    model.ir_version = 8
-    onnx_path = folder / "wmh_only.onnx"
-    onnx.save(model, str(onnx_path))
-    import hashlib
-
-    manifest.update(
-        name="tiny-wmh-only",
-        file=onnx_path.name,
-        sha256=hashlib.sha256(onnx_path.read_bytes()).hexdigest(),
-        output={"name": "probabilities", "channels": ["wmh"]},
-    )
-    path = folder / "wmh_only.yaml"
-    path.write_text(yaml.safe_dump(manifest, sort_keys=False))
-    return path
-
-
 def _process(inbox: Path, out: Path, model: Path, config: dict[str, Any] | None = None) -> Path:
     args = ["process", str(inbox), "--results", str(out), "--model", str(model), "--all-series"]
     if config is not None:
@@ -280,7 +236,9 @@ def test_sagittal_3d_with_a_wmh_only_model(
 ) -> None:
     inbox = _series(tmp_path / "in", SAGITTAL, three_d=True)
     with caplog.at_level(logging.INFO):
-        vdir = _process(inbox, tmp_path / "out", _wmh_only_model(tmp_path / "model"))
+        vdir = _process(
+            inbox, tmp_path / "out", make_tiny_model(tmp_path / "model", intracranial=False)
+        )
     # highdicom's INFO chatter (one line per copied module) stays out of flairwatch's log
     assert not [r for r in caplog.records if r.name.startswith("highdicom") and r.levelno < 30]
     summary = json.loads((vdir / "summary.json").read_text())
