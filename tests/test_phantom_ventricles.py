@@ -14,8 +14,10 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 import pytest
+from scipy import ndimage as ndi
 
 from flairwatch.phantom import PhantomCase, generate, write_case
+from flairwatch.phantom.anatomy import lateral_zone, load_template
 from flairwatch.phantom.generator import TISSUE_CLASSES
 from tests.test_phantom import small_params
 
@@ -42,6 +44,26 @@ def test_ventricles_are_plausible(case: PhantomCase) -> None:
     img = case.image.data
     # suppressed fluid: ventricles darker than the typical intracranial voxel
     assert np.median(img[vent]) < 0.7 * np.median(img[icv & ~vent])
+
+
+def test_ventricle_truth_is_the_two_lateral_ventricles() -> None:
+    """The lateral ventricles lie either side of the midline, split by the septum pellucidum;
+    the third ventricle is a narrow midline cavity below them (anatomy, from memory). The
+    ICBM152 2009a *symmetric* template (its name says so) gives two mirror-image pieces."""
+    tpl = load_template(2)
+    lateral = tpl.vent & lateral_zone(2)
+    x = tpl.affine_lps[0, 0] * np.arange(tpl.shape[0]) + tpl.affine_lps[0, 3]
+    labels, n = ndi.label(lateral)
+    assert n == 2
+    sides = [float(np.mean(x[np.argwhere(labels == i)[:, 0]])) for i in (1, 2)]
+    assert min(sides) < -5.0 and max(sides) > 5.0  # one piece each side of the midline
+    sizes = np.bincount(labels.ravel())[1:]
+    # mirror images (the 2 mm grid averages 2x2x2 blocks, so it is off-centre by half a voxel)
+    assert abs(int(sizes[0]) - int(sizes[1])) <= 0.1 * sizes.max()
+    midline = tpl.vent & (np.abs(x) < 1.5)[:, None, None]
+    assert midline.any() and not (lateral & midline).any()  # third ventricle left out
+    ml = lateral.sum() * tpl.voxel_mm**3 / 1000.0
+    assert 7.0 < ml < 40.0  # young adult lateral ventricles, from memory
 
 
 def test_atrophy_enlarges_the_ventricles() -> None:

@@ -36,6 +36,7 @@ TEMPLATE_FILES = {
 HEAD_MARGIN_MM = 24.0  # room outside the intracranial space for skull (<= 9 mm) and scalp
 SUBARACHNOID_MM = 2.0  # CSF between the template's brain envelope and the inner skull table
 VENTRICLE_DEPTH_MM = 6.0
+MIDLINE_SLAB_MM = 2.0  # half-width of the slab that splits the lateral ventricles from the 3rd
 SHELL_NOISE_CELL_MM = 3.0  # grid of the smooth skull/scalp variations (nearest-cell lookup)
 SKULL_BASE_CLOSING_MM = 25.0  # closing radius of the envelope that the skull follows
 SKULL_BASE_DEPTH_MM = 0.7  # depth given to skull-base voxels (cortical bone: dark)
@@ -228,12 +229,35 @@ def load_template(voxel_mm: int = 1) -> Template:
     )
 
 
+@functools.lru_cache(maxsize=2)
+def lateral_zone(voxel_mm: float = 1.0) -> npt.NDArray[np.bool_]:
+    """True where the nearest template ventricle voxel belongs to a lateral ventricle.
+
+    The template's ventricular CSF (:func:`_ventricles`) also holds the third ventricle and the
+    cisterns behind it. The lateral ventricles are the two largest pieces left once a midline
+    slab of +-``MIDLINE_SLAB_MM`` is removed (the third ventricle lies in that slab); every
+    voxel takes the side of its nearest template ventricle voxel, so ventricles grown by
+    atrophy stay lateral where they grew from a lateral ventricle.
+    """
+    tpl = load_template(int(voxel_mm))
+    x = tpl.affine_lps[0, 0] * np.arange(tpl.shape[0]) + tpl.affine_lps[0, 3]
+    off_mid = (np.abs(x) > MIDLINE_SLAB_MM)[:, None, None]
+    labels, n = ndi.label(tpl.vent & off_mid)
+    sizes = np.bincount(labels.ravel(), minlength=n + 1)
+    sizes[0] = 0
+    lateral = np.isin(labels, np.argsort(sizes)[-2:]) & (labels > 0)
+    _, idx = ndi.distance_transform_edt(~tpl.vent, return_indices=True)
+    return np.asarray(lateral[tuple(idx)], dtype=bool)
+
+
 @dataclass(frozen=True, eq=False)
 class Subject:
     """Tissue fractions of one phantom head on the template grid (all 0..1, float32).
 
-    ``gm``, ``wm``, ``csf``, ``vent_csf`` and ``d_vent`` (distance in mm to this subject's,
-    possibly enlarged, ventricles) cover ``box``, the template's ``brain_box``. The skull and scalp layers ``bone``,
+    ``gm``, ``wm``, ``csf``, ``vent_csf`` (all ventricular CSF, third ventricle and the
+    cisterns behind it included: what the rendering fills with fluid), ``lateral_csf`` (the
+    part of it in the lateral ventricles: the ventricle truth) and ``d_vent`` (distance in mm to
+    this subject's, possibly enlarged, ventricles) cover ``box``, the template's ``brain_box``. The skull and scalp layers ``bone``,
     ``marrow``, ``muscle``, ``fat``, ``skin`` are 1-D, over ``Template.shell_idx``.
     """
 
@@ -241,6 +265,7 @@ class Subject:
     wm: FloatArray
     csf: FloatArray
     vent_csf: FloatArray
+    lateral_csf: FloatArray
     d_vent: FloatArray
     bone: FloatArray
     marrow: FloatArray
@@ -302,6 +327,7 @@ def build_subject(
         gm = gm * np.clip(tpl.d_ext[box] - cortex_thin, 0.0, 1.0)
     csf = np.clip(tpl.icv[box] - gm - wm, 0.0, 1.0)
     vent_csf = csf * (d_vent <= 0.5)
+    lateral_csf = vent_csf * lateral_zone(tpl.voxel_mm)[box]
 
     t = tpl.shell_depth
     skull: FloatArray = skull_mm * (1.0 + 0.25 * np.clip(_noise_at(tpl, rng, 12.0), -1.5, 1.5))
@@ -322,6 +348,7 @@ def build_subject(
         wm=wm.astype(np.float32, copy=False),
         csf=csf.astype(np.float32, copy=False),
         vent_csf=vent_csf.astype(np.float32, copy=False),
+        lateral_csf=lateral_csf.astype(np.float32, copy=False),
         d_vent=d_vent.astype(np.float32, copy=False),
         bone=bone,
         marrow=marrow,

@@ -202,7 +202,7 @@ def _render(
     extra: list[npt.NDArray[np.float32]] = []
     if with_truth and (with_ventricles or with_tissue):
         # extra maps are sampled separately: the image samples stay bit-identical
-        extra = [subj.vent_csf, subj.gm, subj.wm] if with_tissue else [subj.vent_csf]
+        extra = [subj.lateral_csf, subj.gm, subj.wm] if with_tissue else [subj.lateral_csf]
         maps += [(np.ascontiguousarray(m, dtype=np.float32), subj.box) for m in extra]
     n_extra = len(extra)
     sampled = sample_maps(sampler, maps, int_shape, (box_uv[0], box_uv[1]), planes, weights)

@@ -10,7 +10,6 @@ template's axes (i, j, k) and 1 mm voxels; distances are in mm.
 
 from __future__ import annotations
 
-import functools
 import math
 from dataclasses import dataclass
 
@@ -18,13 +17,12 @@ import numpy as np
 import numpy.typing as npt
 from scipy import ndimage as ndi
 
-from flairwatch.phantom.anatomy import Template, load_template
+from flairwatch.phantom.anatomy import Template, lateral_zone, load_template
 from flairwatch.phantom.physics import TISSUES, Tissue
 from flairwatch.shift.lesions import paint_lesions, paint_vessels
 from flairwatch.shift.recipes import Recipe
 
 F32 = npt.NDArray[np.float32]
-MIDLINE_SLAB_MM = 2.0  # half-width of the slab that splits the lateral ventricles from the 3rd
 
 
 @dataclass(frozen=True, eq=False)
@@ -78,24 +76,6 @@ def smooth_field(shape: tuple[int, ...], cell: int, rng: np.random.Generator) ->
     f = ndi.zoom(coarse, zoom, order=1)[tuple(slice(0, n) for n in shape)]
     f = f - f.mean()
     return np.asarray(f / (f.std() + 1e-9), dtype=np.float32)
-
-
-@functools.lru_cache(maxsize=1)
-def lateral_nearest(voxel_mm: int = 1) -> npt.NDArray[np.bool_]:
-    """True where the nearest template ventricle voxel belongs to a lateral ventricle.
-
-    The lateral ventricles are the two largest pieces of the template's ventricles once a
-    midline slab of +-``MIDLINE_SLAB_MM`` is removed (the third ventricle lies in that slab).
-    """
-    tpl = load_template(voxel_mm)
-    x = tpl.affine_lps[0, 0] * np.arange(tpl.shape[0]) + tpl.affine_lps[0, 3]
-    off_mid = (np.abs(x) > MIDLINE_SLAB_MM)[:, None, None]
-    labels, n = ndi.label(tpl.vent & off_mid)
-    sizes = np.bincount(labels.ravel(), minlength=n + 1)
-    sizes[0] = 0
-    lateral = np.isin(labels, np.argsort(sizes)[-2:]) & (labels > 0)
-    _, idx = ndi.distance_transform_edt(~tpl.vent, return_indices=True)
-    return np.asarray(lateral[tuple(idx)], dtype=bool)
 
 
 def _ramp(t: F32, start: float, end: float) -> F32:
@@ -185,7 +165,7 @@ def build_head(r: Recipe, voxel_mm: int = 1) -> HeadMaps:
         tube = paint_vessels(tpl, ext_csf, rng)
         vessels = np.asarray(tube * r.flow * 3.0 * sig["wm"], dtype=np.float32)
         base = base * (1.0 - tube)
-    lat = vent * lateral_nearest(voxel_mm)
+    lat = vent * lateral_zone(voxel_mm)
     return HeadMaps(
         base=np.asarray(base, dtype=np.float32),
         lesion_signal=np.asarray(lesion * contrast * sig["wm"], dtype=np.float32),
