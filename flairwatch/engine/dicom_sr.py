@@ -109,7 +109,7 @@ def build_report(
     seg : highdicom Segmentation
         The result's SEG; every measurement group references one of its segments.
     headers : list of pydicom Dataset
-        The source images (the report's evidence, with the SEG).
+        The source images; the report names their series as each segment's source (TID 1411).
     numbers : Numbers
         Volumes in mL and the lesion count.
     segments : mapping of output name to segment number
@@ -169,8 +169,12 @@ def build_report(
             relationship_type=hd.sr.RelationshipTypeValues.CONTAINS,
         )
     )
+    # the evidence is the SEG alone: PS3.3 C.17.2.3 asks the Current Requested Procedure
+    # Evidence Sequence for the instances the content tree references, and the tree names the
+    # source images only by their series (the SEG references them frame by frame); listing all
+    # of them as well cost a fifth of the SEG and SR's writing time
     sr = hd.sr.Comprehensive3DSR(
-        evidence=[seg, *headers],
+        evidence=[seg],
         content=report[0],
         series_instance_uid=generate_uid(),
         series_number=SR_SERIES_NUMBER,
