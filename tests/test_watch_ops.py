@@ -280,6 +280,10 @@ def test_status_report_from_a_real_ledger(tmp_path: Path) -> None:
     text = render(report)
     assert "done 1" in text and "refused 1" in text and "health: OK" in text
     assert "series e9.2 r1: gap" in text
+    # other lines (the sending lines of flairwatch receive) come before the verdict, which a
+    # person or a script reads last
+    lines = render(report, ["sending to archive: 0 waiting, 2 sent"]).splitlines()
+    assert lines[-2:] == ["sending to archive: 0 waiting, 2 sent", "health: OK"]
 
 
 def test_transient_failures_back_off_then_give_up(tmp_path: Path) -> None:

@@ -88,7 +88,7 @@ def run_status(args: argparse.Namespace) -> int:
     else:
         from flairwatch.network.plan import outbox_lines
 
-        print("\n".join([render(report), *outbox_lines(outbox)]))
+        print(render(report, outbox_lines(outbox)))
     return 0 if report.healthy else 1
 
 

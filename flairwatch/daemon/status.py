@@ -176,7 +176,9 @@ def _when(t: float | None) -> str:
     return "-" if not t else time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(t))
 
 
-def render(report: Report) -> str:
+def render(report: Report, more: Sequence[str] = ()) -> str:
+    """The report as lines for a person; ``more`` (e.g. the sending lines) comes just before
+    the health verdict, which stays last."""
     lines = []
     d = report.daemon
     if d is None:
@@ -204,6 +206,7 @@ def render(report: Report) -> str:
                 f"  {_when(e['finished'])} {e['state']} series {e['series']} "
                 f"r{e['revision']}: {e['error']}"
             )
+    lines.extend(more)
     if report.healthy:
         lines.append("health: OK")
     else:
