@@ -98,3 +98,20 @@ def test_phantoms_command(tmp_path: Path, capsys: pytest.CaptureFixture[str]) ->
     assert main(["phantoms", "--out", str(tmp_path), "--count", "0"]) == 0
     assert main(["phantoms", "--out", str(tmp_path), "--workers", "0"]) == 2
     assert "--workers 0" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize(
+    "argv",
+    [["export"], ["canary"], ["qc", "gallery"], ["review"]],
+)
+def test_commands_that_read_the_ledger_say_how_to_name_it(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], argv: list[str]
+) -> None:
+    # a config file without a state folder: one line naming the command and what to add
+    config = tmp_path / "c.yaml"
+    config.write_text(f"results: {tmp_path / 'r'}\n", encoding="utf-8")
+    assert main([*argv, "--config", str(config)]) == 2
+    last = capsys.readouterr().err.strip().splitlines()[-1]
+    assert last == (
+        f"flairwatch: error: {argv[0]} needs the ledger: give --config FILE with a 'state' key"
+    )

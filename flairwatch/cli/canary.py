@@ -10,8 +10,7 @@ import argparse
 import time
 from pathlib import Path
 
-from flairwatch.cli.common import CAUTION_EPILOG, config_from_args, say, show_caution
-from flairwatch.errors import ConfigInvalid
+from flairwatch.cli.common import CAUTION_EPILOG, config_with_ledger, say, show_caution
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
@@ -33,10 +32,8 @@ def run(args: argparse.Namespace) -> int:
     from flairwatch.ledger.store import Ledger
     from flairwatch.research.canary import run_canary
 
-    cfg = config_from_args(args, "state")
-    if cfg.state is None:
-        raise ConfigInvalid("canary needs the ledger: give --config FILE with a 'state' key")
-    with Ledger.open(cfg.state) as ledger:
+    cfg, state = config_with_ledger(args, "canary")
+    with Ledger.open(state) as ledger:
         started = time.monotonic()
         verdict, measured = run_canary(cfg, ledger, reason="command")
     if measured is not None:

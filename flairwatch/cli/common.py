@@ -12,6 +12,7 @@ import sys
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from flairwatch.errors import ConfigInvalid
 from flairwatch.notice import CAUTION
 
 if TYPE_CHECKING:
@@ -76,6 +77,17 @@ def config_from_args(args: argparse.Namespace, *extra: str) -> Config:
 
         cfg = replace(cfg, model=manifest_path(cfg.model))
     return cfg
+
+
+def config_with_ledger(args: argparse.Namespace, command: str, *extra: str) -> tuple[Config, Path]:
+    """:func:`config_from_args` for a command that reads the ledger; also its state folder.
+
+    Raises ConfigInvalid (one line, what to do) when no ``state`` folder is configured.
+    """
+    cfg = config_from_args(args, "state", *extra)
+    if cfg.state is None:
+        raise ConfigInvalid(f"{command} needs the ledger: give --config FILE with a 'state' key")
+    return cfg, cfg.state
 
 
 def say(text: str) -> None:

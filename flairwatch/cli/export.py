@@ -7,8 +7,7 @@ import logging
 import sys
 from pathlib import Path
 
-from flairwatch.cli.common import CAUTION_EPILOG, config_from_args, show_caution
-from flairwatch.errors import ConfigInvalid
+from flairwatch.cli.common import CAUTION_EPILOG, config_with_ledger, show_caution
 
 log = logging.getLogger("flairwatch.research.export")
 
@@ -43,10 +42,7 @@ def run(args: argparse.Namespace) -> int:
     from flairwatch.research.export import EXPORT_COLUMNS, gather_rows
     from flairwatch.research.tables import csv_bytes, json_bytes
 
-    cfg = config_from_args(args, "state")
-    if cfg.state is None:
-        raise ConfigInvalid("export needs the ledger: give --config FILE with a 'state' key")
-    state = cfg.state
+    cfg, state = config_with_ledger(args, "export")
     with Ledger.open_readonly(state) as ledger:
         rows = gather_rows(
             ledger,

@@ -10,7 +10,7 @@ import time
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from flairwatch.cli.common import config_from_args
+from flairwatch.cli.common import config_with_ledger
 from flairwatch.errors import ConfigInvalid
 from flairwatch.ledger.queries import QC_MARKS
 
@@ -68,10 +68,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def _state(args: argparse.Namespace) -> tuple[Config, Path]:
-    cfg = config_from_args(args, "results", "state")
-    if cfg.state is None:
-        raise ConfigInvalid("qc needs the ledger: give --config FILE with a 'state' key")
-    return cfg, cfg.state
+    return config_with_ledger(args, "qc", "results")
 
 
 def run_mark(args: argparse.Namespace) -> int:

@@ -12,7 +12,7 @@ import sys
 from dataclasses import replace
 from pathlib import Path
 
-from flairwatch.cli.common import config_from_args
+from flairwatch.cli.common import config_with_ledger
 from flairwatch.errors import ConfigInvalid
 
 INSTALL_HINT = (
@@ -46,9 +46,7 @@ def run(args: argparse.Namespace) -> int:
     from flairwatch.research.gallery import GALLERY_FOLDER
     from flairwatch.review.access import check_serving, new_token
 
-    cfg = config_from_args(args, "results", "state")
-    if cfg.state is None:
-        raise ConfigInvalid("review needs the ledger: give --config FILE with a 'state' key")
+    cfg, state = config_with_ledger(args, "review", "results")
     settings = cfg.review
     if args.address is not None:
         settings = replace(settings, address=args.address)
@@ -57,11 +55,11 @@ def run(args: argparse.Namespace) -> int:
             raise ConfigInvalid(f"--port must be 0 to 65535, got {args.port}")
         settings = replace(settings, port=args.port)
     check_serving(settings)
-    with Ledger.open_readonly(cfg.state):  # refuses a missing or old ledger with what to do
+    with Ledger.open_readonly(state):  # refuses a missing or old ledger with what to do
         pass
     gallery = None if cfg.results is None else cfg.results / GALLERY_FOLDER
     site = Site(
-        state=cfg.state, token=new_token(), settings=settings, gallery=gallery,
+        state=state, token=new_token(), settings=settings, gallery=gallery,
         connectivity=cfg.connectivity, longitudinal=cfg.longitudinal,
     )  # fmt: skip
     print(CAUTION, file=sys.stderr)
