@@ -229,6 +229,14 @@ def test_oblique_2d_with_ventricles_and_intracranial(tmp_path: Path) -> None:
         if i.ValueType == "IMAGE" and "ReferencedSegmentNumber" in i.ReferencedSOPSequence[0]
     }
     assert seg_refs == {seg.SOPInstanceUID}
+    # PS3.3 C.17.2.3: the evidence lists every instance the content tree references: the SEG
+    evidence = [
+        ref.ReferencedSOPInstanceUID
+        for study in sr.CurrentRequestedProcedureEvidenceSequence
+        for series in study.ReferencedSeriesSequence
+        for ref in series.ReferencedSOPSequence
+    ]
+    assert evidence == [seg.SOPInstanceUID]
 
 
 def test_sagittal_3d_with_a_wmh_only_model(
