@@ -250,3 +250,47 @@ def test_motion_ghosts_are_shifted_attenuated_copies_along_one_axis() -> None:
     assert out[1, 15, 12] == pytest.approx(0.2) and out[1, 1, 12] == pytest.approx(0.1)
     assert np.count_nonzero(out[1, :, :12]) == 0 and np.count_nonzero(out[1, :, 13:]) == 0
     np.testing.assert_array_equal(x[:, 10, 12], 1.0)  # the input is not changed in place
+
+
+def test_motion_during_scan_follows_the_fourier_shift_theorem() -> None:
+    # Fourier shift theorem (any signal-processing handbook): the same displacement on every
+    # k-space line is a plain translation, here compared with numpy.roll; no displacement
+    # leaves the image as it was.
+    rng = np.random.default_rng(4)
+    x = rng.random((2, 32, 24)).astype(np.float32)
+    np.testing.assert_allclose(
+        rz.motion_during_scan(x, np.full(32, 3.0), axis=1), np.roll(x, 3, axis=1), atol=1e-5
+    )
+    np.testing.assert_allclose(
+        rz.motion_during_scan(x, np.full(24, -5.0), axis=2), np.roll(x, -5, axis=2), atol=1e-5
+    )
+    np.testing.assert_allclose(rz.motion_during_scan(x, np.zeros(24), axis=2), x, atol=1e-5)
+    with pytest.raises(ValueError, match="one displacement per line"):
+        rz.motion_during_scan(x, np.zeros(24), axis=1)
+
+
+def test_motion_during_scan_keeps_energy_and_ghosts_only_along_phase_encoding() -> None:
+    # Parseval's theorem: a phase change per k-space line keeps the image's energy; and the
+    # transform acts along one axis only, so a bright pixel's ghosts stay in its own column
+    # (ghosts follow the phase-encoding direction, common practice).
+    x = np.zeros((1, 64, 48), np.float32)
+    x[0, 20, 12] = 1.0
+    rng = np.random.default_rng(7)
+    for _ in range(5):
+        out = rz.motion_during_scan(x, rz.random_trajectory(64, rng), axis=1)
+        assert float(np.sum(out.astype(np.float64) ** 2)) == pytest.approx(1.0, rel=1e-4)
+        assert np.abs(out[0, :, :12]).max() < 1e-6 and np.abs(out[0, :, 13:]).max() < 1e-6
+    # a periodic trajectory moves energy out of the pixel into ghosts along the column
+    periodic = 2.0 * np.sin(2 * np.pi * np.arange(64) / 8.0)
+    out = rz.motion_during_scan(x, periodic, axis=1)
+    assert out[0, 20, 12] < 0.9 and np.count_nonzero(out[0, :, 12] > 0.01) >= 3
+
+
+def test_random_trajectories_are_bounded_and_of_both_kinds() -> None:
+    rng = np.random.default_rng(11)
+    kinds = set()
+    for _ in range(40):
+        d = rz.random_trajectory(100, rng)
+        assert d.shape == (100,) and np.abs(d).max() <= 5.0
+        kinds.add("step" if len(np.unique(d)) == 2 else "periodic")
+    assert kinds == {"step", "periodic"}

@@ -104,6 +104,38 @@ def motion_ghosts(
     return out
 
 
+def motion_during_scan(x: FloatArray, displacement_px: np.ndarray, axis: int) -> FloatArray:
+    """The magnitude image of a head that moved along ``axis`` while k-space was filled.
+
+    Phase-encoding line n (in acquisition order, from the most negative spatial frequency up)
+    was recorded with the head displaced by ``displacement_px[n]`` pixels; a shift multiplies
+    that line by a linear phase (Fourier shift theorem, common practice), so smooth or periodic
+    trajectories give ghosts of the whole head along ``axis`` and sudden moves give smearing.
+    Labels stay: a ghost of a lesion is not a lesion. ``axis`` is 1 (h) or 2 (w) of (C, h, w).
+    """
+    n = x.shape[axis]
+    if displacement_px.shape != (n,):
+        raise ValueError(f"need one displacement per line ({n}), got {displacement_px.shape}")
+    freq = np.fft.fftfreq(n)
+    ramp = np.exp(-2j * np.pi * freq * np.fft.ifftshift(displacement_px))
+    shape = [1, 1, 1]
+    shape[axis] = n
+    k = np.fft.fft(x, axis=axis) * ramp.reshape(shape)
+    return np.asarray(np.abs(np.fft.ifft(k, axis=axis)), dtype=np.float32)
+
+
+def random_trajectory(n: int, rng: np.random.Generator) -> np.ndarray:
+    """Displacements (pixels) of the head over ``n`` phase-encoding lines: periodic motion
+    (breathing, pulsation: a sine of 3 to 40 lines' period) or one sudden move part-way."""
+    t = np.arange(n, dtype=np.float64)
+    if rng.random() < 0.6:
+        period = float(rng.uniform(3.0, 40.0))
+        amplitude = float(rng.uniform(0.3, 2.5))
+        return amplitude * np.sin(2 * np.pi * t / period + rng.uniform(0, 2 * np.pi))
+    start = int(rng.integers(n // 8, 7 * n // 8))
+    return np.where(t >= start, float(rng.uniform(1.0, 5.0)) * rng.choice((-1.0, 1.0)), 0.0)
+
+
 def fade_lesions(
     x: FloatArray, tissue: np.ndarray, target_ratio: float, smooth_px: float = 0.7
 ) -> FloatArray:

@@ -100,6 +100,7 @@ def sample_crop(
     do_augment: bool = True,
     thick_p: float = 0.3,
     warp_p: float = 0.6,
+    motion_p: float = 0.2,
 ) -> tuple[np.ndarray, list[np.ndarray]]:
     """One crop stack (C, crop, crop) float32 and its labels [wmh 0/1/2, icv, vent] (crop, crop)."""
     k, on_lesion = _pick_slice(case, rng)
@@ -110,7 +111,14 @@ def sample_crop(
     win = (slice(y0, y0 + size), slice(x0, x0 + size))
     idx = _slab_indices(case, k, channels, rng, thick_p if do_augment else 0.0)
     c, t = idx.shape
-    raw = case.image[idx.ravel()][:, win[0], win[1]].astype(np.float32)
+    if do_augment and rng.random() < motion_p:
+        # the whole slice moves, so the ghosts of the bright scalp cross the crop as they would
+        full = case.image[idx.ravel()].astype(np.float32)
+        axis = int(rng.integers(1, 3))
+        full = rz.motion_during_scan(full, rz.random_trajectory(full.shape[axis], rng), axis)
+        raw = full[:, win[0], win[1]]
+    else:
+        raw = case.image[idx.ravel()][:, win[0], win[1]].astype(np.float32)
     tissue = None
     if case.tissue is not None:
         tissue = case.tissue[idx.ravel()][:, win[0], win[1]]
