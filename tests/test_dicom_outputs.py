@@ -355,3 +355,19 @@ def test_an_enhanced_source_highdicom_cannot_take_is_skipped_not_failed() -> Non
         build_segmentation([ds], {"wmh": np.zeros(volume.shape, np.uint8)}, volume.affine_lps,
                            algorithm_name="m", algorithm_version="1", software_version="0",
                            device_serial="x")  # fmt: skip
+
+
+def test_remembered_iod_lookups_answer_as_highdicom_does() -> None:
+    # flairwatch.engine.dicom_seg caches highdicom's IOD-table lookups (a pure function of its
+    # arguments); the cached answers must equal highdicom's own scan of the standard's tables.
+    import highdicom._standard_utils as tables
+
+    cached: Any = tables.is_attribute_in_iod
+    scan = cached.__wrapped__
+    mr, seg = "1.2.840.10008.5.1.4.1.1.4", "1.2.840.10008.5.1.4.1.1.66.4"  # PS3.4 B.5
+    for attribute in ("PixelData", "NumberOfFrames", "ContentDate", "SegmentSequence"):
+        for uid in (mr, seg):
+            for exclude in (None, ["IconImageSequence"]):
+                assert cached(attribute, uid, exclude) == scan(attribute, uid, exclude)
+    assert cached("NumberOfFrames", seg) and not cached("NumberOfFrames", mr)
+    assert cached.cache_info().hits > 0

@@ -14,6 +14,7 @@ WMH type from CID 7140 (CID 7151 is a baseline group, so other standard codes ar
 
 from __future__ import annotations
 
+import functools
 import logging
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -30,6 +31,38 @@ from flairwatch.intake.geometry import frames_of
 # highdicom logs each module it copies into a new instance at INFO, ten lines per result: noise
 # in a daemon's log. Its warnings and errors still come through.
 logging.getLogger("highdicom").setLevel(logging.WARNING)
+
+
+def _remember_iod_lookups() -> None:
+    """Cache highdicom's "is this attribute in that IOD?" answers (a pure function of its
+    arguments, read from the standard's tables).
+
+    highdicom (0.28) answers by a linear scan over every attribute of every module of the IOD,
+    about 1 ms, and asks it once or more per source image when it builds a SEG or an SR: some
+    50 to 100 scans per result. Skipped, and only slower, where a highdicom release lays its
+    helpers out differently.
+    """
+    helpers = getattr(hd, "_standard_utils", None)
+    scan = getattr(helpers, "is_attribute_in_iod", None)
+    if scan is None or hasattr(scan, "cache_info"):
+        return
+
+    @functools.lru_cache(maxsize=256)
+    def remembered(attribute: str, sop_class_uid: str, exclude: tuple[str, ...] | None) -> bool:
+        return bool(scan(attribute, sop_class_uid, exclude))
+
+    def is_attribute_in_iod(
+        attribute: str, sop_class_uid: str, exclude_path_elements: Sequence[str] | None = None
+    ) -> bool:
+        exclude = None if exclude_path_elements is None else tuple(exclude_path_elements)
+        return remembered(attribute, str(sop_class_uid), exclude)
+
+    is_attribute_in_iod.cache_info = remembered.cache_info  # type: ignore[attr-defined]
+    is_attribute_in_iod.__wrapped__ = scan  # type: ignore[attr-defined]
+    helpers.is_attribute_in_iod = is_attribute_in_iod  # type: ignore[union-attr]
+
+
+_remember_iod_lookups()
 
 SEG_FILE = "segmentation.dcm"
 # PS3.3 C.7.3.1 Series Description (LO, 64 chars) and C.10.9 Content Label (CS, 16 chars)
