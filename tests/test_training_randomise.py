@@ -286,11 +286,20 @@ def test_motion_during_scan_keeps_energy_and_ghosts_only_along_phase_encoding() 
     assert out[0, 20, 12] < 0.9 and np.count_nonzero(out[0, :, 12] > 0.01) >= 3
 
 
-def test_random_trajectories_are_bounded_and_of_both_kinds() -> None:
+def test_random_trajectories_are_bounded_and_of_three_kinds() -> None:
+    # A sine's power sits in a few Fourier bins; restless jitter spreads it over many
+    # (Wiener-Khinchin: a short correlation means a broad spectrum; common practice).
     rng = np.random.default_rng(11)
     kinds = set()
-    for _ in range(40):
+    for _ in range(60):
         d = rz.random_trajectory(100, rng)
         assert d.shape == (100,) and np.abs(d).max() <= 5.0
-        kinds.add("step" if len(np.unique(d)) == 2 else "periodic")
-    assert kinds == {"step", "periodic"}
+        power = np.sort(np.abs(np.fft.rfft(d)) ** 2)[::-1]
+        top3 = float(power[:3].sum() / power.sum())
+        if len(np.unique(d)) == 2:
+            kinds.add("step")
+        elif top3 > 0.85:
+            kinds.add("periodic")
+        elif top3 < 0.6:
+            kinds.add("restless")
+    assert kinds == {"step", "periodic", "restless"}

@@ -125,13 +125,23 @@ def motion_during_scan(x: FloatArray, displacement_px: np.ndarray, axis: int) ->
 
 
 def random_trajectory(n: int, rng: np.random.Generator) -> np.ndarray:
-    """Displacements (pixels) of the head over ``n`` phase-encoding lines: periodic motion
-    (breathing, pulsation: a sine of 3 to 40 lines' period) or one sudden move part-way."""
+    """Displacements (pixels) of the head over ``n`` phase-encoding lines, of three kinds:
+    periodic motion (breathing, pulsation: a sine of 3 to 40 lines' period), restless motion
+    (random jitter from line to line, smoothed over 0 to 2 lines, RMS 0.4 to 2 pixels: ghosts
+    spread over the whole phase-encoding axis) or one sudden move part-way. At most 5 pixels."""
     t = np.arange(n, dtype=np.float64)
-    if rng.random() < 0.6:
+    kind = rng.random()
+    if kind < 0.45:
         period = float(rng.uniform(3.0, 40.0))
         amplitude = float(rng.uniform(0.3, 2.5))
         return amplitude * np.sin(2 * np.pi * t / period + rng.uniform(0, 2 * np.pi))
+    if kind < 0.75:
+        jitter = rng.standard_normal(n)
+        smooth = float(rng.uniform(0.0, 2.0))
+        if smooth > 0.3:
+            jitter = ndimage.gaussian_filter1d(jitter, smooth, mode="wrap")
+        jitter *= float(rng.uniform(0.4, 2.0)) / max(float(np.sqrt(np.mean(jitter**2))), 1e-9)
+        return np.clip(jitter, -5.0, 5.0)
     start = int(rng.integers(n // 8, 7 * n // 8))
     return np.where(t >= start, float(rng.uniform(1.0, 5.0)) * rng.choice((-1.0, 1.0)), 0.0)
 

@@ -100,7 +100,7 @@ def sample_crop(
     do_augment: bool = True,
     thick_p: float = 0.3,
     warp_p: float = 0.6,
-    motion_p: float = 0.2,
+    motion_p: float = 0.3,
 ) -> tuple[np.ndarray, list[np.ndarray]]:
     """One crop stack (C, crop, crop) float32 and its labels [wmh 0/1/2, icv, vent] (crop, crop)."""
     k, on_lesion = _pick_slice(case, rng)
