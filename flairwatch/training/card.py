@@ -137,8 +137,9 @@ N x {len(facts["outputs"])} x 224 x 224, batch axis dynamic). File size {facts["
   (labels moved by nearest neighbour), bright non-lesion structures labelled background
   (cortical ribbon patches, bright sulci, flow-like spots in fluid), faint lesions (in 30 % of
   crops, lesions faded to 1.08-1.35x white matter), motion: attenuated shifted copies of the
-  crop, and in 20 % of crops the whole slice moving while k-space is filled (periodic motion or
-  one sudden move, along either in-plane axis), left-right flips.
+  crop, and in 30 % of crops the whole slice moving while k-space is filled (periodic motion,
+  restless line-to-line jitter or one sudden move, along either in-plane axis), left-right
+  flips.
 - Hard negatives: lesion-free cases drawn twice as often; 40 % of non-lesion crops centred on
   bright non-lesion pixels.
 - Loss: binary cross-entropy + soft Dice (batch-level) for WMH, and at half weight each for the
