@@ -87,12 +87,29 @@ def watch_command(config: Path, *extra: str) -> list[str]:
     return [sys.executable, "-m", "flairwatch.cli", "watch", "--config", str(config), *extra]
 
 
+# pid -> (log, its size at start): where to look for this run's "ready" line
+_RUN_LOGS: dict[int, tuple[Path, int]] = {}
+
+
 def start_daemon(config: Path, log: Path, *extra: str) -> subprocess.Popen[bytes]:
     """Start ``flairwatch watch`` as its own process, logging to ``log``."""
     with open(log, "ab") as fh:
-        return subprocess.Popen(
+        offset = fh.tell()
+        proc = subprocess.Popen(
             watch_command(config, *extra), cwd=REPO, stdout=fh, stderr=subprocess.STDOUT
         )
+    _RUN_LOGS[proc.pid] = (log, offset)
+    return proc
+
+
+def _ready(proc: subprocess.Popen[bytes]) -> bool:
+    """Whether this run logged that its model is loaded (its stop handlers are in by then)."""
+    log, offset = _RUN_LOGS.get(proc.pid, (None, 0))
+    if log is None:
+        return True
+    with open(log, "rb") as fh:
+        fh.seek(offset)
+        return b" ready in " in fh.read()
 
 
 def run_once(config: Path, log: Path, timeout: float = 60.0) -> int:
@@ -109,6 +126,11 @@ def run_once(config: Path, log: Path, timeout: float = 60.0) -> int:
 
 
 def stop(proc: subprocess.Popen[bytes], timeout: float = 30.0) -> int:
+    """SIGTERM once the run is past start-up (before, Python's default handler would kill it,
+    and the test would not be checking the daemon's stop path), then its exit status."""
+    deadline = time.monotonic() + timeout
+    while proc.poll() is None and not _ready(proc) and time.monotonic() < deadline:
+        time.sleep(0.05)
     if proc.poll() is None:
         proc.send_signal(signal.SIGTERM)
     return proc.wait(timeout)
