@@ -70,3 +70,20 @@ def test_flat_layout_and_old_label_two_layout_give_the_same_arrays(tmp_path: Pat
     assert case.vent is not None and case.slice_mm == pytest.approx(3.0)
     assert load_cached(tmp_path / "old.npz").vent is None
     assert list(case.lesion_slices) == [2, 3]
+
+
+def test_threshold_seeds_are_validation_seeds_only_and_never_held_out() -> None:
+    # no leakage (common practice: a threshold is chosen on data the network was not trained
+    # on, and the test data stay untouched): every seed obeys the split rule of
+    # flairwatch.training.cache, none is one of the generator's held-out seeds
+    from flairwatch.phantom.bank import HELD_OUT_SEEDS
+    from flairwatch.training.cache import is_validation
+    from flairwatch.training.heldout import THRESHOLD_CASES, threshold_seeds
+
+    cached = [150, 10, 130, 7, 900010]  # 7: a training seed; 900010: held out
+    seeds = threshold_seeds(cached)
+    assert len(seeds) == len(set(seeds)) == THRESHOLD_CASES
+    assert seeds[:3] == [10, 130, 150]  # the cached validation phantoms first
+    assert all(is_validation("", s) for s in seeds)
+    assert not set(seeds) & set(HELD_OUT_SEEDS) and 7 not in seeds
+    assert threshold_seeds(list(range(0, 1000, 10)), 4) == [0, 10, 20, 30]

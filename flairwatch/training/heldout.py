@@ -73,6 +73,27 @@ def _pooled_recall(scores: Sequence[metrics.CaseScores]) -> float | None:
     return detected / reference if reference else None
 
 
+# phantoms behind the exported threshold: with 8 (5 of them >= 1 mL) the median Dice is one
+# case's and the chosen threshold jumped between exports of near-identical checkpoints
+THRESHOLD_CASES = 24
+
+
+def threshold_seeds(cached: Sequence[int], n: int = THRESHOLD_CASES) -> list[int]:
+    """``n`` validation seeds for the threshold: the cached validation seeds first, then further
+    seeds ending in 0 (the validation rule, so never trained on), never a held-out seed."""
+    from flairwatch.phantom.bank import HELD_OUT_SEEDS
+    from flairwatch.training.cache import is_validation
+
+    held_out = set(HELD_OUT_SEEDS)
+    seeds = [s for s in sorted(set(cached)) if is_validation("", s) and s not in held_out][:n]
+    candidate = 10
+    while len(seeds) < n:
+        if candidate not in seeds and candidate not in held_out and is_validation("", candidate):
+            seeds.append(candidate)
+        candidate += 10
+    return seeds
+
+
 def choose_threshold_series(
     manifest_path: Path, seeds: Sequence[int], threads: int
 ) -> tuple[float, dict[str, Any]]:

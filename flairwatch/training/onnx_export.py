@@ -34,6 +34,7 @@ from flairwatch.training.heldout import (
     THRESHOLDS,
     choose_threshold_series,
     held_out_check,
+    threshold_seeds,
 )
 from flairwatch.training.network import WithSigmoid, WmhNet
 
@@ -340,8 +341,9 @@ def export_and_check(
         )
 
     manifest_path = manifest()
-    # at most 8 validation phantoms: each one is regenerated and segmented (minutes on 2 cores)
-    seeds = sorted(_seed_of(p) for p in validation if "generator" in _source_of(p))[:8]
+    # the validation phantoms, topped up with further validation seeds: each one is regenerated
+    # and segmented (a few minutes on 2 cores)
+    seeds = threshold_seeds([_seed_of(p) for p in validation if "generator" in _source_of(p)])
     if series_threshold and seeds:
         try:
             series_t, val_series = choose_threshold_series(manifest_path, seeds, threads)
