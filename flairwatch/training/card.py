@@ -80,6 +80,13 @@ def _origin(facts: dict[str, Any]) -> str:
     ws = facts.get("warm_start")
     if not ws:
         return "Trained from freshly initialised weights."
+    if ws.get("widened_from"):
+        return (
+            f"Widened from a checkpoint with level widths {tuple(ws['widened_from'])} "
+            f"({ws['step']} steps; {ws['minutes']:.1f} min of CPU training behind its weights): "
+            "old channels kept their weights and ignore the new ones, so training started from "
+            "the same outputs; new channels started from fresh random weights."
+        )
     return (
         f"Warm-started from the checkpoint of the earlier `wmh-synth` run ({ws['step']} steps, "
         f"{ws['minutes']:.1f} min of CPU training): every layer copied, the output layer's "

@@ -16,7 +16,7 @@ from typing import Any
 
 import torch
 
-from flairwatch.training.network import WmhNet
+from flairwatch.training.network import WmhNet, widen_into
 
 log = logging.getLogger("train_model")
 
@@ -52,9 +52,28 @@ def warm_start(net: WmhNet, path: Path) -> dict[str, Any]:
     """Copy the weights of the checkpoint at ``path`` into ``net`` where shapes allow.
 
     Every layer of the same shape is copied; the output layer copies the channels both share
-    (WMH, intracranial), and a new channel keeps its fresh initialisation. Returns provenance.
+    (WMH, intracranial), and a new channel keeps its fresh initialisation. A checkpoint with
+    narrower levels is widened (:func:`~flairwatch.training.network.widen_into`): the wider
+    network starts computing what the narrower one did. Returns provenance.
     """
     state = torch.load(path, weights_only=False)
+    widths = tuple(int(w) for w in state["widths"])
+    if widths != tuple(net.widths):  # wider levels: same function at the start, room to learn
+        copied = widen_into(net, state["model"], widths)
+        log.info(
+            "warm start from %s (step %d): widths %s widened to %s, %d tensors filled",
+            path, state["step"], widths, net.widths, copied,
+        )  # fmt: skip
+        earlier = (state.get("origin") or {}).get("warm_start") or {}
+        return {
+            "from": str(path),
+            "step": int(state["step"]),
+            # CPU time behind the starting weights, the checkpoint's own warm start included
+            "minutes": float(state["train_seconds"]) / 60.0 + float(earlier.get("minutes", 0.0)),
+            "outputs": checkpoint_outputs(state),
+            "tensors_copied": copied,
+            "widened_from": list(widths),
+        }
     own = net.state_dict()
     copied = 0
     for key, value in state["model"].items():

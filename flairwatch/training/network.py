@@ -97,3 +97,78 @@ class WithSigmoid(nn.Module):
 def count_parameters(net: nn.Module) -> int:
     """Number of trainable parameters."""
     return sum(p.numel() for p in net.parameters() if p.requires_grad)
+
+
+def _layer_inputs(
+    old: tuple[int, int, int, int], new: tuple[int, int, int, int], in_channels: int
+) -> dict[str, list[tuple[int, int]]]:
+    """Per convolution of :class:`WmhNet`: its input channels as (old, new) segments, two for
+    a skip concatenation."""
+    lv = [(old[i], new[i]) for i in range(4)]
+    layers: dict[str, list[tuple[int, int]]] = {}
+    for name, src, dst in (
+        ("enc0", (in_channels, in_channels), lv[0]),
+        ("enc1", lv[0], lv[1]),
+        ("enc2", lv[1], lv[2]),
+        ("bottom", lv[2], lv[3]),
+    ):
+        layers[f"{name}.0"] = [src]
+        layers[f"{name}.3"] = [dst]
+    for name, up, level in (("2", lv[3], lv[2]), ("1", lv[2], lv[1]), ("0", lv[1], lv[0])):
+        layers[f"up{name}"] = [up]
+        layers[f"dec{name}.0"] = [level, level]  # cat([upsampled, skip])
+        layers[f"dec{name}.3"] = [level]
+    layers["head"] = [lv[0]]
+    return layers
+
+
+def _index(segments: list[tuple[int, int]]) -> torch.Tensor:
+    """Where each old input channel sits among the new ones."""
+    idx: list[int] = []
+    start = 0
+    for n_old, n_new in segments:
+        idx.extend(range(start, start + n_old))
+        start += n_new
+    return torch.tensor(idx, dtype=torch.long)
+
+
+@torch.no_grad()
+def widen_into(net: WmhNet, old_state: dict[str, torch.Tensor], old_widths: tuple[int, ...]) -> int:
+    """Load a narrower :class:`WmhNet`'s weights into ``net`` so that it computes the same
+    outputs (function-preserving widening, as in "Net2Net": Chen, Goodfellow and Shlens, 2016).
+
+    Old channels keep their weights and ignore every new channel (zero weights from new inputs,
+    so their values and batch statistics are unchanged, and the head reads old channels only);
+    new channels keep their fresh random weights, so they compute something and learn from the
+    first step. Returns the number of tensors filled.
+    """
+    w_old = tuple(int(w) for w in old_widths)
+    if len(w_old) != 4 or any(o > n for o, n in zip(w_old, net.widths, strict=True)):
+        raise ValueError(f"cannot widen widths {w_old} into {net.widths}")
+    own = net.state_dict()
+    layers = _layer_inputs((w_old[0], w_old[1], w_old[2], w_old[3]), net.widths, net.in_channels)
+    filled = 0
+    for key, value in old_state.items():
+        layer, _, kind = key.rpartition(".")
+        if key not in own:
+            continue
+        target = own[key]
+        if kind == "num_batches_tracked":
+            target.copy_(value)
+        elif layer in layers:  # a convolution (or the transposed one going up)
+            idx = _index(layers[layer])
+            if kind == "bias":
+                target[: value.shape[0]] = value
+            elif layer.startswith("up"):  # ConvTranspose2d weight: (in, out, kh, kw)
+                out_old = value.shape[1]
+                target[:, :out_old] = 0.0
+                target[idx, :out_old] = value
+            else:  # Conv2d weight: (out, in, kh, kw)
+                out_old = value.shape[0]
+                target[:out_old] = 0.0
+                target[:out_old, idx] = value
+        else:  # batch normalisation after a convolution: per output channel
+            target[: value.shape[0]] = value
+        filled += 1
+    net.load_state_dict(own)
+    return filled
