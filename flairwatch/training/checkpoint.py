@@ -58,25 +58,32 @@ def warm_start(net: WmhNet, path: Path) -> dict[str, Any]:
     """
     state = torch.load(path, weights_only=False)
     widths = tuple(int(w) for w in state["widths"])
+    provenance: dict[str, Any] = {}
     if widths != tuple(net.widths):  # wider levels: same function at the start, room to learn
         copied = widen_into(net, state["model"], widths)
-        log.info(
-            "warm start from %s (step %d): widths %s widened to %s, %d tensors filled",
-            path, state["step"], widths, net.widths, copied,
-        )  # fmt: skip
-        earlier = (state.get("origin") or {}).get("warm_start") or {}
-        return {
-            "from": str(path),
-            "step": int(state["step"]),
-            # CPU time behind the starting weights, the checkpoint's own warm start included
-            "minutes": float(state["train_seconds"]) / 60.0 + float(earlier.get("minutes", 0.0)),
-            "outputs": checkpoint_outputs(state),
-            "tensors_copied": copied,
-            "widened_from": list(widths),
-        }
+        provenance["widened_from"] = list(widths)
+        how = f"widths {widths} widened to {net.widths}, {copied} tensors filled"
+    else:
+        copied = _copy_matching(net, state["model"])
+        how = f"{copied} tensors copied"
+    log.info("warm start from %s (step %d): %s", path, state["step"], how)
+    earlier = (state.get("origin") or {}).get("warm_start") or {}
+    return {
+        "from": str(path),
+        "step": int(state["step"]),
+        # CPU time behind the starting weights, the checkpoint's own warm start included
+        "minutes": float(state["train_seconds"]) / 60.0 + float(earlier.get("minutes", 0.0)),
+        "outputs": checkpoint_outputs(state),
+        "tensors_copied": copied,
+        **provenance,
+    }
+
+
+def _copy_matching(net: WmhNet, model: dict[str, torch.Tensor]) -> int:
+    """Copy every tensor of the same shape, and the output channels both heads share."""
     own = net.state_dict()
     copied = 0
-    for key, value in state["model"].items():
+    for key, value in model.items():
         if key in own and own[key].shape == value.shape:
             own[key] = value.clone()
             copied += 1
@@ -85,11 +92,4 @@ def warm_start(net: WmhNet, path: Path) -> dict[str, Any]:
             own[key][:n] = value[:n]
             copied += 1
     net.load_state_dict(own)
-    log.info("warm start from %s (step %d): %d tensors copied", path, state["step"], copied)
-    return {
-        "from": str(path),
-        "step": int(state["step"]),
-        "minutes": float(state["train_seconds"]) / 60.0,
-        "outputs": checkpoint_outputs(state),
-        "tensors_copied": copied,
-    }
+    return copied
