@@ -216,8 +216,9 @@ class Engine:
             with timed(timings, "write"):
                 title = self._title(final, analysis)
                 threads = self.segmenter.threads
-                # the SEG and SR are built beside the other files: most of their time is
-                # Python in highdicom, which overlaps the zlib and numpy work of write_files
+                # the SEG and SR are built beside the other files; most of their time is
+                # Python in highdicom and pydicom under the interpreter lock, so this saves only
+                # the few ms where write_files runs zlib or numpy (README, "Measured speed")
                 with ThreadPoolExecutor(max_workers=1) as pool:
                     job = self._dicom_job(headers, secret)
                     pending = pool.submit(write_dicom, tmp, volume, analysis, job)
